@@ -1,0 +1,203 @@
+"""Run a case as a local command: render the template, start the solver, enforce its timeout.
+
+The solver runs as an argument list (never through a shell) in its own session, so that it
+and every child it starts form one process group. A timeout, a cancel, or the end of the
+solver kills that whole group: SIGTERM first, SIGKILL after ``kill_grace_s``. stdout and stderr
+go to files in the case folder, and a failure reason always names the file to look at.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
+from sortie.adapters.template import render_folder, render_text
+
+from sortie.config import QuantitySpec
+from sortie.errors import AdapterError
+from sortie.quantities import QuantityNotFound, read_quantity
+
+STDOUT = "solver.stdout"
+STDERR = "solver.stderr"
+
+
+class CommandOptions(BaseModel):
+    """Config keys of ``solver:`` for ``adapter: command``."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    adapter: str
+    template: str
+    command: list[str] = Field(min_length=1)
+    timeout_s: float = Field(default=3600.0, gt=0)
+    kill_grace_s: float = Field(default=5.0, ge=0)
+    render: list[str] | None = None
+    env: dict[str, str] = Field(default_factory=dict)
+
+
+@dataclass
+class _Running:
+    proc: subprocess.Popen[bytes]
+    deadline: float
+    timed_out: bool = False
+
+
+class CommandAdapter:
+    """Runs each case as a local process group; see the module docstring.
+
+    Parameters
+    ----------
+    options : CommandOptions
+        Validated ``solver:`` section.
+    quantities : mapping of str to QuantitySpec
+        Where each quantity is read after the solver ends.
+    base_dir : Path
+        Folder of the config file; ``template`` is relative to it.
+    """
+
+    Options = CommandOptions
+    poll_interval_s = 0.1
+
+    def __init__(self, options: CommandOptions, quantities: Mapping[str, QuantitySpec], base_dir: Path) -> None:
+        self.options = options
+        self.quantities = dict(quantities)
+        self.base_dir = Path(base_dir)
+        self._running: dict[int, _Running] = {}
+
+    @classmethod
+    def check(cls, options: CommandOptions, quantities: Mapping[str, QuantitySpec], base_dir: Path) -> list[str]:
+        """Set-up problems found without running anything."""
+        problems = []
+        template = (base_dir / options.template).resolve()
+        if not template.is_dir():
+            problems.append(f"solver.template: {template} is not a folder; give the folder holding the solver's input files (relative to the config file)")
+        if "{{" not in options.command[0] and _which(options.command[0]) is None:
+            problems.append(f"solver.command: program {options.command[0]!r} is not found on PATH or in {Path(sys.executable).parent}; give an installed program or a path")
+        for name, spec in quantities.items():
+            if spec.file is None:
+                problems.append(f"quantities.{name}: the command adapter reads quantities from files; give 'file' and one of pattern, key, column, json_path")
+        return problems
+
+    def start(self, case: CaseSpec) -> JobHandle:
+        workdir = Path(case.workdir)
+        if workdir.exists():
+            shutil.rmtree(workdir)  # a fresh attempt starts from the template, never from leftovers
+        workdir.mkdir(parents=True)
+        context = case.context()
+        render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
+        argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
+        program = _which(argv[0]) if not os.path.isabs(argv[0]) else argv[0]
+        if program is None:
+            raise AdapterError(f"solver.command: program {argv[0]!r} is not found on PATH; give an installed program or a path")
+        env = {**os.environ, **self.options.env}
+        with open(workdir / STDOUT, "wb") as out, open(workdir / STDERR, "wb") as err:
+            try:
+                proc = subprocess.Popen([program, *argv[1:]], cwd=workdir, stdin=subprocess.DEVNULL, stdout=out,
+                                        stderr=err, env=env, start_new_session=True)
+            except OSError as exc:
+                raise AdapterError(f"solver.command: {program} cannot be started ({exc.strerror}); check it is an executable program") from None
+        now = time.time()
+        self._running[case.case_id] = _Running(proc, time.monotonic() + self.options.timeout_s)
+        return JobHandle(case.case_id, str(proc.pid), now, pgid=proc.pid)
+
+    def poll(self, handle: JobHandle) -> JobState:
+        run = self._running.get(handle.case_id)
+        if run is None:
+            return JobState.FAILED
+        code = run.proc.poll()
+        if code is None:
+            if time.monotonic() < run.deadline:
+                return JobState.RUNNING
+            run.timed_out = True
+            kill_group(run.proc.pid, self.options.kill_grace_s, run.proc)
+            return JobState.FAILED
+        kill_group(run.proc.pid, self.options.kill_grace_s, None)  # children left behind by the solver
+        return JobState.DONE if code == 0 else JobState.FAILED
+
+    def collect(self, handle: JobHandle, case: CaseSpec) -> CaseOutcome:
+        run = self._running.pop(handle.case_id, None)
+        workdir = Path(case.workdir)
+        stderr = workdir / STDERR
+        if run is None:
+            return CaseOutcome.failed("transient", f"the solver process {handle.job_id} is no longer tracked by this orchestrator")
+        if run.timed_out:
+            return CaseOutcome.failed("timeout", f"the solver ran longer than timeout_s={self.options.timeout_s:g} and its process group was killed; see {workdir / STDOUT}")
+        code = run.proc.returncode
+        if code != 0:
+            how = f"was killed by signal {-code}" if code < 0 else f"exited with code {code}"
+            return CaseOutcome.failed("solver", f"the solver {how}{_last_line(stderr)}; see {stderr}")
+        raw: dict[str, Any] = {}
+        for name, spec in self.quantities.items():
+            try:
+                raw[name] = read_quantity(workdir, name, spec)
+            except QuantityNotFound as err:
+                return CaseOutcome.failed("output", f"{err}; see {workdir / STDOUT}")
+        return check_quantities(raw, list(self.quantities), f"the output in {workdir}")
+
+    def cancel(self, handle: JobHandle) -> None:
+        run = self._running.pop(handle.case_id, None)
+        kill_group(int(handle.pgid or handle.job_id), self.options.kill_grace_s, run.proc if run else None)
+
+
+def kill_group(pgid: int, grace_s: float, proc: subprocess.Popen[bytes] | None) -> None:
+    """SIGTERM the process group, wait up to ``grace_s`` for it to go, then SIGKILL what is left."""
+    try:
+        os.killpg(pgid, signal.SIGTERM)
+    except (ProcessLookupError, PermissionError):
+        return
+    deadline = time.monotonic() + grace_s
+    while time.monotonic() < deadline:
+        if proc is not None:
+            proc.poll()  # reap the leader so the group can empty
+        if not _group_alive(pgid):
+            return
+        time.sleep(0.05)
+    with contextlib.suppress(ProcessLookupError, PermissionError):
+        os.killpg(pgid, signal.SIGKILL)
+    if proc is not None:
+        proc.wait()
+
+
+def _group_alive(pgid: int) -> bool:
+    try:
+        os.killpg(pgid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    # A group whose only members are zombies still answers signal 0; look for a live member.
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            if int(fields[2]) == pgid and fields[0] != "Z":
+                return True
+    return False
+
+
+def _which(program: str) -> str | None:
+    """Find ``program`` on PATH, then beside this Python (a venv's console scripts)."""
+    if os.sep in program:
+        return program if os.access(program, os.X_OK) else None
+    return shutil.which(program) or shutil.which(program, path=str(Path(sys.executable).parent))
+
+
+def _last_line(path: Path) -> str:
+    try:
+        lines = [ln.strip() for ln in path.read_text(errors="replace").splitlines() if ln.strip()]
+    except OSError:
+        return ""
+    return f" ({lines[-1][:200]})" if lines else ""

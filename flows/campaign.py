@@ -1,0 +1,213 @@
+"""The campaign flow: plan the designs, keep ``slots`` cases in flight, record and score each.
+
+The flow is the conductor and the ledger is the record. All ledger writes happen here, in the
+flow's main thread; case tasks only run the adapter and report through a queue. Each finished
+case is written at once, and a design is scored as soon as its last case is in, so a campaign
+stopped at any moment keeps everything that finished.
+"""
+
+from __future__ import annotations
+
+import queue
+import time
+from collections import deque
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sortie.flows.runtime import configure_prefect
+
+configure_prefect()
+
+from prefect import flow, task  # noqa: E402  (settings must be in the environment first)
+from prefect.cache_policies import NO_CACHE  # noqa: E402
+from prefect.futures import PrefectFuture  # noqa: E402
+from prefect.settings import PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings  # noqa: E402
+from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, SolverAdapter  # noqa: E402
+from sortie.adapters.registry import build_adapter, check_solver  # noqa: E402
+
+from sortie import campaign as campaign_folder  # noqa: E402
+from sortie.config import CampaignConfig  # noqa: E402
+from sortie.errors import CampaignError, SortieError  # noqa: E402
+from sortie.goal import Goal  # noqa: E402
+from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
+from sortie.plan import initial_designs  # noqa: E402
+
+TERMINAL = (JobState.DONE, JobState.FAILED)
+
+
+@dataclass(frozen=True)
+class _Started:
+    case_id: int
+    handle: JobHandle
+
+
+@dataclass(frozen=True)
+class _Finished:
+    case_id: int
+    future: PrefectFuture[CaseOutcome]
+
+
+@task(name="run-case", task_run_name="solve-{case.name}", cache_policy=NO_CACHE)
+def run_case(case: CaseSpec, adapter: SolverAdapter, inbox: queue.Queue[Any]) -> CaseOutcome:
+    """Run one case through the solver adapter until it ends."""
+    handle = adapter.start(case)
+    inbox.put(_Started(case.case_id, handle))
+    try:
+        while adapter.poll(handle) not in TERMINAL:
+            time.sleep(adapter.poll_interval_s)
+    except BaseException:
+        adapter.cancel(handle)
+        raise
+    return adapter.collect(handle, case)
+
+
+@dataclass
+class _Conductor:
+    """Keeps the slots busy and writes every state change to the ledger (main thread only)."""
+
+    directory: Path
+    config: CampaignConfig
+    ledger: Ledger
+    adapter: SolverAdapter
+    goal: Goal = field(init=False)
+    conditions: list[dict[str, float]] = field(init=False)
+    inbox: queue.Queue[Any] = field(default_factory=queue.Queue)
+    in_flight: dict[int, tuple[CaseSpec, JobHandle | None]] = field(default_factory=dict)
+    stop_reason: str | None = None
+
+    def __post_init__(self) -> None:
+        self.goal = self.config.goal.build()
+        self.conditions = self.config.condition_list()
+
+    # -- plan ------------------------------------------------------------------------------
+    def plan(self) -> None:
+        """Record the baseline and the initial experiment (only what is not recorded yet)."""
+        wanted = initial_designs(self.config.plan.initial, self.config.space(), self.config.campaign.seed)
+        have = len(self.ledger.designs())
+        for design in wanted[have:]:
+            self.ledger.add_design(stage=design.stage, reason=design.reason, values=design.values,
+                                   unit=design.unit, conditions=self.conditions)
+
+    # -- run -------------------------------------------------------------------------------
+    def run(self) -> None:
+        for case in self.ledger.cases(states=("submitting", "running")):
+            # A previous run ended without recording this case's end; its local process is gone.
+            self.ledger.requeue(case.id, why="lost", reason="the orchestrator stopped while the case ran")
+        waiting = deque(self.ledger.cases(states=("planned",)))
+        self.score_finished_designs()
+        try:
+            while (waiting and self.stop_reason is None) or self.in_flight:
+                while waiting and self.stop_reason is None and len(self.in_flight) < self.config.slots:
+                    self.submit(waiting.popleft())
+                self.handle(self.inbox.get(timeout=3600))
+        except BaseException:
+            self.abandon_in_flight("interrupted", "the campaign was interrupted")
+            raise
+        if self.stop_reason is not None:
+            raise CampaignError(self.stop_reason)
+
+    def submit(self, row: CaseRow) -> None:
+        values = self.ledger.design(row.design_id).values
+        spec = CaseSpec(row.id, row.name, row.design_id, values, row.condition,
+                        self.directory / campaign_folder.CASES / row.name)
+        self.ledger.mark_submitting(row.id, spec.workdir)  # written before the solver starts
+        self.in_flight[row.id] = (spec, None)
+        future = run_case.submit(spec, self.adapter, self.inbox)
+        future.add_done_callback(lambda f, cid=row.id: self.inbox.put(_Finished(cid, f)))
+
+    def handle(self, message: Any) -> None:
+        if isinstance(message, _Started):
+            spec, _ = self.in_flight[message.case_id]
+            self.in_flight[message.case_id] = (spec, message.handle)
+            self.ledger.mark_running(message.case_id, message.handle.job_id, message.handle.pgid)
+            return
+        assert isinstance(message, _Finished)
+        message.future.wait()
+        spec, _ = self.in_flight.pop(message.case_id)
+        result = message.future.result(raise_on_failure=False)
+        if isinstance(result, SortieError):
+            # A broken set-up (template, program) fails every case alike: stop, keep the case.
+            self.ledger.requeue(message.case_id, why="setup", reason=str(result))
+            self.stop_reason = self.stop_reason or str(result)
+            return
+        if isinstance(result, BaseException):
+            self.ledger.requeue(message.case_id, why="error", reason=f"{type(result).__name__}: {result}")
+            self.stop_reason = self.stop_reason or f"case {spec.name} hit an internal error ({type(result).__name__}: {result})"
+            return
+        outcome: CaseOutcome = result
+        if outcome.ok:
+            self.ledger.finish_case(message.case_id, quantities=outcome.quantities)
+        else:
+            self.ledger.finish_case(message.case_id, failure_class=outcome.failure_class, reason=outcome.reason)
+        self.score_finished_designs()
+
+    def abandon_in_flight(self, why: str, reason: str) -> None:
+        """Stop every case still running and put it back in the plan for the next run."""
+        for case_id, (_, handle) in list(self.in_flight.items()):
+            if handle is not None:
+                self.adapter.cancel(handle)
+            self.ledger.requeue(case_id, why=why, reason=reason)
+        self.in_flight.clear()
+
+    # -- score -----------------------------------------------------------------------------
+    def score_finished_designs(self) -> None:
+        """Score every design whose cases have all ended and that has no goal values yet."""
+        designs = {d.id: d for d in self.ledger.designs()}
+        cases_by_design: dict[int, list[CaseRow]] = {}
+        for case in self.ledger.cases():
+            cases_by_design.setdefault(case.design_id, []).append(case)
+        baseline_id = min(designs) if designs else None
+        baseline = self._vectors(cases_by_design.get(baseline_id, [])) if baseline_id is not None else None
+        needs_baseline = self.goal.uses_baseline()
+        if needs_baseline and baseline_id is not None and designs[baseline_id].status == "pending":
+            cases = cases_by_design[baseline_id]
+            failed = [c for c in cases if c.state == "failed"]
+            if failed and all(c.state in ("done", "failed") for c in cases):
+                self.ledger.finish_design(baseline_id, status="failed")
+                first = failed[0]
+                self.stop_reason = (f"the baseline design failed (case {first.name}: {first.failure_reason}); the goal "
+                                    "compares designs with the baseline, so the campaign stops; fix the solver set-up and run again")
+                return
+        for design_id, design in designs.items():
+            cases = cases_by_design.get(design_id, [])
+            if design.status != "pending" or not cases or any(c.state not in ("done", "failed") for c in cases):
+                continue
+            if any(c.state == "failed" for c in cases):
+                self.ledger.finish_design(design_id, status="failed")
+                continue
+            if needs_baseline and baseline is None:
+                continue  # scored once the baseline's cases are all in
+            score = self.goal.score(self._vectors(cases), baseline, self.conditions)  # type: ignore[arg-type]
+            self.ledger.finish_design(design_id, status="done", objective=score.objective,
+                                      constraints=score.constraints, feasible=score.feasible)
+
+    def _vectors(self, cases: list[CaseRow]) -> dict[str, Any] | None:
+        if not cases or any(c.state != "done" for c in cases):
+            return None
+        ordered = sorted(cases, key=lambda c: c.condition_index)
+        return {q: np.array([c.quantities[q] for c in ordered]) for q in self.config.quantities}  # type: ignore[index]
+
+
+@flow(name="campaign", log_prints=True)
+def campaign_flow(campaign_dir: str) -> dict[str, int]:
+    """Run a campaign's designs through its solver until its plan is done."""
+    directory = Path(campaign_dir)
+    config, base_dir = campaign_folder.load(directory)
+    adapter = build_adapter(config.solver, config.quantities, base_dir)
+    with Ledger.open(ledger_path(directory)) as ledger:
+        conductor = _Conductor(directory, config, ledger, adapter)
+        conductor.plan()
+        conductor.run()
+        cases = ledger.cases()
+    return {"cases_done": sum(c.state == "done" for c in cases), "cases_failed": sum(c.state == "failed" for c in cases)}
+
+
+def run_campaign(directory: Path) -> dict[str, int]:
+    """Run the campaign in ``directory`` (prepared by :func:`sortie.campaign.prepare`) to its end."""
+    config, _ = campaign_folder.load(directory, check_solver=check_solver)
+    runner = ThreadPoolTaskRunner(max_workers=config.slots)
+    with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):
+        return campaign_flow.with_options(task_runner=runner, flow_run_name=config.campaign.name)(str(directory))

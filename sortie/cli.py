@@ -1,0 +1,191 @@
+"""The command line: a thin edge over the library.
+
+Each command parses its arguments, calls the library, and formats the answer. Every
+:class:`~sortie.errors.SortieError` becomes one line on stderr and exit code 2; ``--debug`` shows
+the traceback instead. Prefect is imported only inside ``run``, so ``check``, ``status`` and
+``export`` start fast.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from sortie.errors import ConfigError, SortieError
+
+app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+                  help="Run CFD design campaigns: designed experiments, solver runs, surrogates and infill.")
+
+CAUTION = ("Caution: surrogate predictions must be confirmed by the real solver and by test; structural and "
+           "safety sign-off follows your organisation's own rules and licensed practice.")
+
+
+def _load_config(path: Path):
+    from sortie.adapters.registry import check_solver
+    from sortie.config import load_config
+
+    return load_config(path, check_solver=check_solver)
+
+
+@app.command()
+def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")]) -> None:
+    """Validate a config without running anything.
+
+    Example: sortie check configs/sled-aftbody.yaml
+    """
+    from sortie.plan import initial_unit_points, sampling_notes
+
+    cfg = _load_config(config)
+    n_initial = len(initial_unit_points(cfg.plan.initial, cfg.space(), cfg.campaign.seed))
+    n_cond = len(cfg.condition_list())
+    for note in sampling_notes(cfg.plan.initial):
+        typer.echo(f"note: {note}")
+    typer.echo(f"{config}: ok - {cfg.space().n_dims} free parameters, {n_cond} conditions, "
+               f"baseline + {n_initial} initial designs = {(n_initial + 1) * n_cond} cases, budget {cfg.budget.designs} designs, "
+               f"{cfg.slots} slots, adapter {cfg.solver['adapter']}")
+
+
+@app.command()
+def run(
+    config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")],
+    directory: Annotated[Path | None, typer.Option("--dir", help="Campaign folder [default: campaigns/<name>].")] = None,
+) -> None:
+    """Run a campaign to the end of its plan; an existing folder with the same config is continued.
+
+    Example: sortie run configs/sled-aftbody.yaml --dir campaigns/sled
+    """
+    from sortie import campaign
+    from sortie.progress import LedgerWatcher
+
+    cfg = _load_config(config)
+    directory = directory or Path("campaigns") / cfg.campaign.name
+    prepared = campaign.prepare(config, cfg, directory)
+    typer.echo(f"{'continuing' if prepared.existed else 'starting'} campaign {cfg.campaign.name!r} in {directory}")
+    if not os.environ.get("PREFECT_API_URL"):
+        typer.echo("starting Prefect's temporary local API (about 10 s; set PREFECT_API_URL to use a running server)")
+    from sortie.flows.campaign import run_campaign
+
+    try:
+        with LedgerWatcher(directory, cfg, stream=sys.stdout):
+            run_campaign(directory)
+    except KeyboardInterrupt:
+        typer.echo(f"interrupted; finished cases are kept. Continue with: sortie run {config} --dir {directory}", err=True)
+        raise typer.Exit(130) from None
+    _print_result(directory, cfg)
+
+
+def _print_result(directory: Path, cfg) -> None:
+    from sortie.ledger import Ledger, ledger_path
+    from sortie.status import summary
+
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        s = summary(ledger, cfg)
+    typer.echo("")
+    typer.echo(f"campaign {cfg.campaign.name!r}: {s['designs_done']} designs scored, {s['designs_failed']} failed; "
+               f"{s['cases_done']} cases done, {s['cases_failed']} failed")
+    base, best = s["baseline"], s["best"]
+    if base and base["objective"] is not None:
+        typer.echo(f"baseline (design {base['design']}): objective {base['objective']:.6g}")
+    if best:
+        typer.echo(f"best design {best['design']}: objective {best['objective']:.6g} "
+                   f"({'feasible' if best['feasible'] else 'no feasible design yet; this one violates least'})")
+        typer.echo("  " + ", ".join(f"{k}={_fmt(v)}" for k, v in best["values"].items()))
+    typer.echo(f"results: ledger {ledger_path(directory)}, case folders {directory / 'cases'}")
+    typer.echo(f"next: sortie status {directory}   |   sortie export {directory} --to designs.csv")
+    typer.echo(CAUTION)
+
+
+def _fmt(v: object) -> str:
+    return f"{v:.4g}" if isinstance(v, float) else str(v)
+
+
+@app.command()
+def status(
+    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+) -> None:
+    """Show what a campaign has done, from its ledger (safe while it runs).
+
+    Example: sortie status campaigns/sled-aftbody --json
+    """
+    from sortie import campaign
+    from sortie.ledger import Ledger, ledger_path
+    from sortie.progress import describe
+    from sortie.status import summary
+
+    cfg, _ = campaign.load(directory)
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        s = summary(ledger, cfg)
+    if as_json:
+        typer.echo(json.dumps(s, indent=2))
+        return
+    typer.echo(f"campaign {s['campaign']!r} in {directory}")
+    typer.echo(describe(s))
+    if s["failures_by_class"]:
+        typer.echo("failures: " + ", ".join(f"{k} {v}" for k, v in sorted(s["failures_by_class"].items())))
+
+
+@app.command()
+def export(
+    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
+    to: Annotated[Path, typer.Option("--to", help="Output file: .csv or .parquet.")],
+) -> None:
+    """Write one row per design (parameters, objective, constraints, feasible, status).
+
+    Example: sortie export campaigns/sled-aftbody --to designs.parquet
+    """
+    from sortie import campaign
+    from sortie.ledger import Ledger, ledger_path
+    from sortie.status import design_table
+
+    suffix = to.suffix.lower()
+    if suffix not in (".csv", ".parquet"):
+        raise ConfigError([f"--to: {to} must end in .csv or .parquet"])
+    cfg, _ = campaign.load(directory)
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        table = design_table(ledger, cfg)
+    try:
+        to.parent.mkdir(parents=True, exist_ok=True)
+        if suffix == ".csv":
+            table.to_csv(to, index=False)
+        else:
+            table.to_parquet(to, index=False)
+    except OSError as err:
+        raise ConfigError([f"--to: {to} cannot be written ({err.strerror or err})"]) from None
+    typer.echo(f"wrote {len(table)} designs to {to}")
+
+
+def main() -> None:
+    """Entry point: run the app, turning SortieError into one line and exit code 2."""
+    debug = "--debug" in sys.argv
+    if debug:
+        sys.argv.remove("--debug")
+    try:
+        app(standalone_mode=False)
+    except SortieError as err:
+        if debug:
+            raise
+        for line in str(err).splitlines():
+            typer.echo(f"error: {line}", err=True)
+        sys.exit(2)
+    except (typer.Abort, KeyboardInterrupt):
+        typer.echo("aborted", err=True)
+        sys.exit(130)
+    except typer.Exit as exc:
+        sys.exit(exc.exit_code)
+    except Exception as exc:  # click usage errors come through here in standalone_mode=False
+        import click
+
+        if isinstance(exc, click.ClickException):
+            exc.show()
+            sys.exit(2)
+        raise
+
+
+if __name__ == "__main__":
+    main()

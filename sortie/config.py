@@ -1,0 +1,399 @@
+"""Campaign configuration: YAML in, validated pydantic models out.
+
+Validation happens once, here, at the edge; the rest of sortie trusts these objects. Every
+problem becomes one line ``key.path: what is wrong; what is allowed`` and *all* problems are
+reported together, so a user fixes a config in one pass. Unknown keys are errors, with a
+"did you mean" when a known key is close.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import re
+from collections.abc import Callable, Mapping
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from sortie.errors import ConfigError, GoalError
+from sortie.goal import RESERVED, Constraint, Expression, Goal
+from sortie.space import DesignSpace, Parameter
+
+NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
+SAMPLING_METHODS = ("sobol", "lhs", "full-factorial", "fractional-factorial", "central-composite", "one-at-a-time")
+SIZED_METHODS = ("sobol", "lhs")
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class CampaignSection(_Section):
+    """Who the campaign is: a name (used for its default folder) and the one random seed."""
+
+    name: str = Field(min_length=1)
+    seed: int = 0
+    description: str = ""
+
+    @field_validator("name")
+    @classmethod
+    def _plain_name(cls, v: str) -> str:
+        if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.-]*", v):
+            raise ValueError(f"{v!r} must be letters, digits, '_', '.' or '-' (it names a folder)")
+        return v
+
+
+class ParameterSpec(_Section):
+    """One parameter: ``lower``/``upper`` (with ``integer``) or ``choices``; always a baseline."""
+
+    lower: float | None = None
+    upper: float | None = None
+    choices: list[float | int | str] | None = None
+    integer: bool = False
+    baseline: float | int | str
+    unit: str = ""
+    fixed: bool = False
+
+    @model_validator(mode="after")
+    def _consistent(self) -> ParameterSpec:
+        if self.choices is not None:
+            if self.lower is not None or self.upper is not None or self.integer:
+                raise ValueError("give either choices or lower/upper (with integer), not both")
+            if len(self.choices) < 2 and not self.fixed:
+                raise ValueError(f"choices ({self.choices}) must list at least two values")
+            if len(set(map(str, self.choices))) != len(self.choices):
+                raise ValueError(f"choices ({self.choices}) must not repeat a value")
+            if self.baseline not in self.choices:
+                raise ValueError(f"baseline ({self.baseline!r}) must be one of the choices {self.choices}")
+            return self
+        if self.lower is None or self.upper is None:
+            raise ValueError("needs lower and upper bounds (or a list of choices)")
+        if isinstance(self.baseline, str):
+            raise ValueError(f"baseline ({self.baseline!r}) must be a number between lower and upper")
+        if not np.isfinite([self.lower, self.upper]).all():
+            raise ValueError("lower and upper must be finite numbers")
+        if self.upper <= self.lower:
+            raise ValueError(f"upper ({self.upper:g}) must be greater than lower ({self.lower:g})")
+        if not self.lower <= self.baseline <= self.upper:
+            raise ValueError(f"baseline ({self.baseline:g}) must lie between lower ({self.lower:g}) and upper ({self.upper:g})")
+        if self.integer and not all(float(v).is_integer() for v in (self.lower, self.upper, self.baseline)):
+            raise ValueError("an integer parameter needs whole-number lower, upper and baseline")
+        return self
+
+    def to_parameter(self, name: str) -> Parameter:
+        if self.choices is not None:
+            return Parameter(name, "choice", self.baseline, choices=tuple(self.choices), unit=self.unit, fixed=self.fixed)
+        if self.integer:
+            return Parameter(name, "integer", int(self.baseline), lower=float(self.lower), upper=float(self.upper),
+                             unit=self.unit, fixed=self.fixed)
+        return Parameter(name, "continuous", float(self.baseline), lower=self.lower, upper=self.upper,
+                         unit=self.unit, fixed=self.fixed)
+
+
+class QuantitySpec(_Section):
+    """Where a quantity is read: ``file`` plus exactly one rule, or nothing for in-process solvers."""
+
+    file: str | None = None
+    pattern: str | None = None
+    key: str | None = None
+    column: str | None = None
+    json_path: str | None = None
+    unit: str = ""
+
+    @model_validator(mode="after")
+    def _one_rule(self) -> QuantitySpec:
+        rules = [r for r in ("pattern", "key", "column", "json_path") if getattr(self, r) is not None]
+        if len(rules) > 1:
+            raise ValueError(f"give one reading rule, not {len(rules)} ({', '.join(rules)}); allowed: pattern, key, column, json_path")
+        if rules and self.file is None:
+            raise ValueError(f"rule {rules[0]!r} needs the output file it reads (key 'file')")
+        if self.file is not None and not rules:
+            raise ValueError("needs a reading rule with 'file': one of pattern, key, column, json_path")
+        if self.pattern is not None:
+            try:
+                compiled = re.compile(self.pattern)
+            except re.error as err:
+                raise ValueError(f"pattern {self.pattern!r} is not a valid regular expression ({err})") from None
+            if "value" not in compiled.groupindex:
+                raise ValueError(f"pattern {self.pattern!r} needs a named group (?P<value>...) around the number")
+        return self
+
+    @property
+    def rule(self) -> str | None:
+        return next((r for r in ("pattern", "key", "column", "json_path") if getattr(self, r) is not None), None)
+
+
+class GoalSection(_Section):
+    """The objective (``minimize`` or ``maximize``) and constraints over quantities."""
+
+    minimize: str | None = None
+    maximize: str | None = None
+    subject_to: list[str] = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _one_direction(self) -> GoalSection:
+        if (self.minimize is None) == (self.maximize is None):
+            raise ValueError("give exactly one of minimize or maximize")
+        return self
+
+    @property
+    def sense(self) -> Literal["minimize", "maximize"]:
+        return "minimize" if self.minimize is not None else "maximize"
+
+    def objective(self) -> Expression:
+        return Expression.parse(self.minimize or self.maximize or "", where=f"goal.{self.sense}")
+
+    def constraints(self) -> list[Constraint]:
+        return [Constraint.parse(s, where=f"goal.subject_to[{i}]") for i, s in enumerate(self.subject_to)]
+
+    def build(self) -> Goal:
+        """The parsed goal, ready to score designs."""
+        return Goal(self.sense, self.objective(), tuple(self.constraints()))
+
+
+class StageSpec(_Section):
+    """A designed experiment: method, size (for Latin hypercube and Sobol') and method options."""
+
+    method: Literal["sobol", "lhs", "full-factorial", "fractional-factorial", "central-composite", "one-at-a-time"]
+    designs: int | None = Field(default=None, gt=0)
+    levels: int | None = Field(default=None, ge=2, le=11)
+    variant: Literal["circumscribed", "face", "inscribed"] = "circumscribed"
+    center_points: int = Field(default=1, ge=0, le=20)
+    optimization: Literal["random-cd", "lloyd"] | None = None
+
+    @model_validator(mode="after")
+    def _size(self) -> StageSpec:
+        if self.method in SIZED_METHODS and self.designs is None:
+            raise ValueError(f"method {self.method!r} needs the number of designs (key 'designs')")
+        if self.method not in SIZED_METHODS and self.designs is not None:
+            raise ValueError(f"method {self.method!r} sets its own number of designs; remove 'designs' (allowed only for sobol and lhs)")
+        if self.levels is not None and self.method not in ("full-factorial", "one-at-a-time"):
+            raise ValueError(f"'levels' applies to full-factorial and one-at-a-time, not {self.method!r}")
+        if self.optimization is not None and self.method != "lhs":
+            raise ValueError(f"'optimization' applies to lhs only, not {self.method!r}")
+        return self
+
+
+class PlanSection(_Section):
+    """The stages of the campaign; for now the initial designed experiment."""
+
+    initial: StageSpec
+
+
+class BudgetSection(_Section):
+    """What the campaign may spend: designs, counting the baseline."""
+
+    designs: int = Field(gt=0)
+
+
+class CampaignConfig(_Section):
+    """A whole campaign config; build it with :func:`load_config`."""
+
+    campaign: CampaignSection
+    parameters: dict[str, ParameterSpec] = Field(min_length=1)
+    conditions: dict[str, list[float]] = Field(min_length=1)
+    solver: dict[str, Any]
+    quantities: dict[str, QuantitySpec] = Field(min_length=1)
+    goal: GoalSection
+    plan: PlanSection
+    budget: BudgetSection
+    slots: int = Field(default=1, gt=0, le=10000)
+
+    @field_validator("solver")
+    @classmethod
+    def _adapter_named(cls, v: dict[str, Any]) -> dict[str, Any]:
+        if not isinstance(v.get("adapter"), str):
+            raise ValueError("needs 'adapter', the name of an installed solver adapter (for example command or python)")
+        return v
+
+    @field_validator("conditions")
+    @classmethod
+    def _conditions(cls, v: dict[str, list[float]]) -> dict[str, list[float]]:
+        lengths = {k: len(vals) for k, vals in v.items()}
+        if any(n == 0 for n in lengths.values()):
+            raise ValueError("every condition needs at least one value")
+        if len(set(lengths.values())) > 1:
+            shown = ", ".join(f"{k} has {n}" for k, n in lengths.items())
+            raise ValueError(f"lists must have the same length ({shown}); position i of every list is condition i")
+        points = list(zip(*v.values(), strict=True))
+        if len(set(points)) != len(points):
+            raise ValueError("a condition is listed twice")
+        if not np.isfinite(np.asarray(points, dtype=float)).all():
+            raise ValueError("condition values must be finite numbers")
+        return v
+
+    @model_validator(mode="after")
+    def _cross_checks(self) -> CampaignConfig:
+        problems: list[str] = []
+        names = {"parameters": list(self.parameters), "conditions": list(self.conditions), "quantities": list(self.quantities)}
+        seen: dict[str, str] = {}
+        for section, keys in names.items():
+            for key in keys:
+                if not NAME.match(key):
+                    problems.append(f"{section}.{key}: names must be letters, digits and '_' and not start with a digit (they are used in templates and goal expressions)")
+                elif key in RESERVED:
+                    problems.append(f"{section}.{key}: {key!r} is reserved for goal expressions; choose another name")
+                elif key in seen:
+                    problems.append(f"{section}.{key}: the name is already used in {seen[key]}; names must be unique across parameters, conditions and quantities")
+                seen.setdefault(key, section)
+        if all(p.fixed for p in self.parameters.values()):
+            problems.append("parameters: every parameter is fixed; at least one must be free")
+        conditions = self.condition_list()
+        try:
+            objective = self.goal.objective()
+            objective.check(list(self.quantities), conditions)
+            value = objective.evaluate({q: np.arange(1.0, len(conditions) + 1) for q in self.quantities}, None if not objective.uses_baseline() else {q: np.ones(len(conditions)) for q in self.quantities}, conditions)
+            if np.ndim(value) and np.size(value) > 1:
+                problems.append(f"goal.{self.goal.sense}: {objective.source!r} gives one value per condition; reduce it to one number with max(), min(), mean() or a selector such as [{next(iter(self.conditions))}=...]")
+        except GoalError as err:
+            problems.append(str(err))
+        for i, source in enumerate(self.goal.subject_to):
+            try:
+                Constraint.parse(source, where=f"goal.subject_to[{i}]").check(list(self.quantities), conditions)
+            except GoalError as err:
+                problems.append(str(err))
+        initial = self.plan.initial
+        n_free = sum(not p.fixed for p in self.parameters.values())
+        if initial.method == "fractional-factorial" and n_free < 3:
+            problems.append(f"plan.initial.method: fractional-factorial needs at least 3 free parameters, the config has {n_free}")
+        if initial.method == "central-composite" and n_free < 2:
+            problems.append(f"plan.initial.method: central-composite needs at least 2 free parameters, the config has {n_free}")
+        if not problems:
+            from sortie.plan import initial_unit_points
+
+            n_initial = len(initial_unit_points(initial, self.space(), self.campaign.seed))
+            if n_initial + 1 > self.budget.designs:
+                problems.append(f"budget.designs: {self.budget.designs} cannot hold the baseline plus the {n_initial} designs of plan.initial ({initial.method}); allowed: at least {n_initial + 1}")
+        if problems:
+            raise _Problems(problems)
+        return self
+
+    def condition_list(self) -> list[dict[str, float]]:
+        """The conditions as one mapping per operating point, in config order."""
+        return [dict(zip(self.conditions, point, strict=True)) for point in zip(*self.conditions.values(), strict=True)]
+
+    def space(self) -> DesignSpace:
+        return DesignSpace(tuple(spec.to_parameter(name) for name, spec in self.parameters.items()))
+
+
+class _Problems(ValueError):
+    """Carries several already-formatted lines out of a model validator."""
+
+    def __init__(self, lines: list[str]) -> None:
+        self.lines = lines
+        super().__init__("\n".join(lines))
+
+
+SolverCheck = Callable[[Mapping[str, Any], Path, Mapping[str, Any]], list[str]]
+
+
+def load_config(path: Path, *, check_solver: SolverCheck | None = None) -> CampaignConfig:
+    """Read and validate a campaign config file.
+
+    Parameters
+    ----------
+    path : Path
+        The YAML file. Relative paths inside it are relative to its folder.
+    check_solver : callable, optional
+        ``check_solver(solver_section, base_dir, quantities_section) -> problems``, supplied by the adapter registry so
+        that adapter options are checked in the same pass (core does not import adapters).
+
+    Raises
+    ------
+    ConfigError
+        With one line per problem.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError([f"{path}: no such config file"]) from None
+    except (OSError, UnicodeDecodeError) as err:
+        raise ConfigError([f"{path}: cannot be read ({err.__class__.__name__}: {err}); a UTF-8 YAML file is expected"]) from None
+    return parse_config(text, base_dir=path.resolve().parent, source=str(path), check_solver=check_solver)
+
+
+def parse_config(text: str, *, base_dir: Path, source: str = "config", check_solver: SolverCheck | None = None) -> CampaignConfig:
+    """Validate config text; see :func:`load_config`."""
+    try:
+        raw = yaml.safe_load(text)
+    except yaml.YAMLError as err:
+        mark = getattr(err, "problem_mark", None)
+        where = f"{source} line {mark.line + 1}, column {mark.column + 1}" if mark else source
+        problem = getattr(err, "problem", None) or str(err).splitlines()[0]
+        raise ConfigError([f"{where}: not valid YAML ({problem})"]) from None
+    if not isinstance(raw, dict):
+        raise ConfigError([f"{source}: the top level must be a mapping of sections (campaign, parameters, conditions, solver, quantities, goal, plan, budget, slots), got {type(raw).__name__}"])
+    problems: list[str] = []
+    config: CampaignConfig | None = None
+    try:
+        config = CampaignConfig.model_validate(raw)
+    except ValidationError as err:
+        problems.extend(format_validation_errors(err, CampaignConfig))
+    if check_solver is not None and isinstance(raw.get("solver"), dict) and isinstance(raw["solver"].get("adapter"), str):
+        problems.extend(check_solver(raw["solver"], base_dir, raw.get("quantities") if isinstance(raw.get("quantities"), dict) else {}))
+    if problems:
+        raise ConfigError(list(dict.fromkeys(problems)))
+    assert config is not None
+    return config
+
+
+def config_hash(text: str) -> str:
+    """Hash of the config's meaning (parsed YAML, keys sorted), blind to comments and layout."""
+    canonical = json.dumps(yaml.safe_load(text), sort_keys=True, default=str)
+    return hashlib.sha256(canonical.encode()).hexdigest()[:16]
+
+
+def format_validation_errors(err: ValidationError, model: type[BaseModel], prefix: str = "") -> list[str]:
+    """One line per pydantic error: ``key.path: message (got value)``, with "did you mean"."""
+    lines = []
+    for e in err.errors(include_url=False):
+        ctx = e.get("ctx") or {}
+        if isinstance(ctx.get("error"), _Problems):
+            lines.extend(ctx["error"].lines)
+            continue
+        path = prefix + ".".join(str(p) for p in e["loc"]) if e["loc"] else (prefix.rstrip(".") or "config")
+        kind = e["type"]
+        if kind == "extra_forbidden":
+            *parent, key = e["loc"]
+            allowed = _allowed_keys(model, parent)
+            hint = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.6)
+            did = f"; did you mean {hint[0]!r}?" if hint else ""
+            lines.append(f"{path}: unknown key{did} allowed here: {', '.join(allowed)}" if not did else f"{path}: unknown key{did} (allowed here: {', '.join(allowed)})")
+        elif kind == "missing":
+            lines.append(f"{path}: required key is missing")
+        else:
+            msg = e["msg"].removeprefix("Value error, ").removeprefix("Assertion failed, ")
+            shown = e.get("input")
+            value = "" if kind == "value_error" or isinstance(shown, dict) else f" (got {shown!r})"
+            lines.append(f"{path}: {msg}{value}")
+    return lines
+
+
+def _allowed_keys(model: type[BaseModel], parent: list[Any]) -> list[str]:
+    """Walk the model tree along ``parent`` (skipping dict keys) to list the allowed keys."""
+    current: Any = model
+    for part in parent:
+        fields = getattr(current, "model_fields", None)
+        if fields is None:
+            break
+        if part in fields:
+            current = _inner_model(fields[part].annotation)
+        # a dict key (parameter name and the like) keeps the same model
+    fields = getattr(current, "model_fields", None) or {}
+    return list(fields)
+
+
+def _inner_model(annotation: Any) -> Any:
+    args = getattr(annotation, "__args__", ())
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return annotation
+    for a in reversed(args):
+        if isinstance(a, type) and issubclass(a, BaseModel):
+            return a
+    return annotation

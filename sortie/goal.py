@@ -1,0 +1,277 @@
+"""Goal expressions: the objective and constraints, evaluated safely over quantities.
+
+A quantity is a vector over the campaign's conditions (one entry per condition, in config order).
+Expressions are parsed with :mod:`ast` and walked by hand: only numbers, quantity names,
+``baseline.<quantity>``, selection at one condition (``drag[mach=1.1]``), arithmetic, and the
+functions in :data:`FUNCTIONS` are allowed. Nothing is ever passed to ``eval``, and attribute
+access, imports, lambdas and the like are rejected when the config is checked.
+
+Examples
+--------
+>>> conds = [{"mach": 0.6}, {"mach": 1.1}]
+>>> e = Expression.parse("max(lift) - min(lift)", where="goal.minimize")
+>>> float(e.evaluate({"lift": np.array([-0.2, 0.3])}, None, conds))
+0.5
+"""
+
+from __future__ import annotations
+
+import ast
+import math
+import re
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from sortie.errors import GoalError
+
+#: Functions an expression may call. One argument reduces a vector over conditions; min/max with
+#: several arguments take the elementwise minimum/maximum.
+FUNCTIONS: dict[str, Callable[..., Any]] = {
+    "min": np.min,
+    "max": np.max,
+    "mean": np.mean,
+    "sum": np.sum,
+    "abs": np.abs,
+    "sqrt": np.sqrt,
+}
+REDUCERS = {"min", "max", "mean", "sum"}
+BASELINE = "baseline"
+RESERVED = frozenset(FUNCTIONS) | {BASELINE}
+
+_BINOPS: dict[type, Callable[[Any, Any], Any]] = {
+    ast.Add: np.add,
+    ast.Sub: np.subtract,
+    ast.Mult: np.multiply,
+    ast.Div: np.divide,
+    ast.Pow: np.power,
+}
+_COMPARE = {ast.LtE: "<=", ast.Lt: "<", ast.GtE: ">=", ast.Gt: ">"}
+# `drag[mach=1.1]` is not Python syntax; rewrite each selector `name=` to `name==` before parsing.
+_SELECTOR = re.compile(r"(?<![=!<>])\b([A-Za-z_]\w*)\s*=(?!=)")
+
+Vector = np.ndarray
+Scalar = float
+Values = Mapping[str, Vector]
+
+
+@dataclass(frozen=True)
+class Expression:
+    """A parsed expression over quantities; immutable and safe to evaluate many times."""
+
+    source: str
+    where: str
+    tree: ast.expr = field(repr=False, compare=False)
+
+    @classmethod
+    def parse(cls, source: str, *, where: str) -> Expression:
+        """Parse ``source``; ``where`` is the config path used in error messages."""
+        tree = _parse(source, where)
+        if isinstance(tree, ast.Compare):
+            raise GoalError(f"{where}: {source!r} is a comparison; an objective must be a number (use subject_to for constraints)")
+        return cls(source, where, tree)
+
+    def quantity_names(self) -> set[str]:
+        """Quantities the expression reads (directly or through ``baseline.``)."""
+        names: set[str] = set()
+        for node in ast.walk(self.tree):
+            if isinstance(node, ast.Attribute):
+                names.add(node.attr)
+            elif isinstance(node, ast.Name) and node.id not in RESERVED and not _is_selector_name(self.tree, node):
+                names.add(node.id)
+        return names
+
+    def uses_baseline(self) -> bool:
+        """True when the expression refers to the baseline design's values."""
+        return any(isinstance(n, ast.Attribute) for n in ast.walk(self.tree))
+
+    def check(self, quantities: Sequence[str], conditions: Sequence[Mapping[str, float]]) -> None:
+        """Evaluate once on dummy data so that unknown names and selectors fail at config time."""
+        dummy = {q: np.ones(len(conditions)) for q in quantities}
+        self.evaluate(dummy, dummy, conditions)
+
+    def evaluate(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> Scalar | Vector:
+        """Evaluate with ``values[q]`` of shape (n_conditions,) for each quantity ``q``."""
+        with np.errstate(all="ignore"):
+            return _Evaluator(self, values, baseline, conditions).visit(self.tree)
+
+
+@dataclass(frozen=True)
+class Constraint:
+    """``lhs OP rhs``; its margin is positive when violated and at most zero when met."""
+
+    source: str
+    where: str
+    lhs: Expression
+    op: str
+    rhs: Expression
+
+    @classmethod
+    def parse(cls, source: str, *, where: str) -> Constraint:
+        tree = _parse(source, where)
+        if not (isinstance(tree, ast.Compare) and len(tree.ops) == 1 and type(tree.ops[0]) in _COMPARE):
+            raise GoalError(f"{where}: {source!r} must be one comparison such as 'drag <= baseline.drag' (allowed: <=, <, >=, >)")
+        op = _COMPARE[type(tree.ops[0])]
+        return cls(source, where, Expression(source, where, tree.left), op, Expression(source, where, tree.comparators[0]))
+
+    def quantity_names(self) -> set[str]:
+        return self.lhs.quantity_names() | self.rhs.quantity_names()
+
+    def uses_baseline(self) -> bool:
+        return self.lhs.uses_baseline() or self.rhs.uses_baseline()
+
+    def check(self, quantities: Sequence[str], conditions: Sequence[Mapping[str, float]]) -> None:
+        self.lhs.check(quantities, conditions)
+        self.rhs.check(quantities, conditions)
+
+    def margin(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> float:
+        """Worst margin over conditions: ``lhs - rhs`` for ``<=``, ``rhs - lhs`` for ``>=``."""
+        lhs = self.lhs.evaluate(values, baseline, conditions)
+        rhs = self.rhs.evaluate(values, baseline, conditions)
+        diff = np.asarray(lhs - rhs if self.op in ("<=", "<") else rhs - lhs, dtype=float)
+        return float(np.max(diff))
+
+
+def _parse(source: str, where: str) -> ast.expr:
+    if not isinstance(source, str) or not source.strip():
+        raise GoalError(f"{where}: an expression is required, got {source!r}")
+    rewritten = _SELECTOR.sub(r"\1==", source)
+    try:
+        return ast.parse(rewritten.strip(), mode="eval").body
+    except SyntaxError as err:
+        raise GoalError(f"{where}: {source!r} is not a valid expression ({err.msg}); allowed: numbers, quantities, baseline.<quantity>, quantity[condition=value], + - * / **, {', '.join(FUNCTIONS)}") from None
+
+
+def _is_selector_name(root: ast.expr, name: ast.Name) -> bool:
+    for node in ast.walk(root):
+        if isinstance(node, ast.Subscript):
+            for cmp in _selectors(node.slice):
+                if cmp.left is name:
+                    return True
+    return False
+
+
+def _selectors(node: ast.expr) -> list[ast.Compare]:
+    items = node.elts if isinstance(node, ast.Tuple) else [node]
+    return [i for i in items if isinstance(i, ast.Compare)]
+
+
+class _Evaluator:
+    """Walks an expression tree; every node type not handled here is an error."""
+
+    def __init__(self, expr: Expression, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]):
+        self.expr, self.values, self.baseline, self.conditions = expr, values, baseline, conditions
+
+    def fail(self, what: str) -> GoalError:
+        return GoalError(f"{self.expr.where}: {self.expr.source!r} {what}")
+
+    def visit(self, node: ast.expr) -> Any:
+        if isinstance(node, ast.Constant) and isinstance(node.value, int | float) and not isinstance(node.value, bool):
+            return float(node.value)
+        if isinstance(node, ast.Name):
+            return self.quantity(node.id, self.values)
+        if isinstance(node, ast.Attribute):
+            if not (isinstance(node.value, ast.Name) and node.value.id == BASELINE):
+                raise self.fail("uses attribute access; only baseline.<quantity> is allowed")
+            if self.baseline is None:
+                raise self.fail("refers to the baseline design, whose results are not available yet")
+            return self.quantity(node.attr, self.baseline)
+        if isinstance(node, ast.Subscript):
+            return self.select(node)
+        if isinstance(node, ast.BinOp) and type(node.op) in _BINOPS:
+            return _BINOPS[type(node.op)](self.visit(node.left), self.visit(node.right))
+        if isinstance(node, ast.UnaryOp) and isinstance(node.op, ast.USub | ast.UAdd):
+            value = self.visit(node.operand)
+            return -value if isinstance(node.op, ast.USub) else value
+        if isinstance(node, ast.Call):
+            return self.call(node)
+        if isinstance(node, ast.Compare):
+            raise self.fail("has a comparison where a number is expected")
+        raise self.fail(f"uses {type(node).__name__.lower()} syntax, which is not allowed; allowed: numbers, quantities, baseline.<quantity>, quantity[condition=value], + - * / **, {', '.join(FUNCTIONS)}")
+
+    def quantity(self, name: str, source: Values) -> Vector:
+        if name in RESERVED:
+            raise self.fail(f"uses {name!r} as a value; {name!r} is reserved")
+        if name not in source:
+            known = ", ".join(sorted(source)) or "none"
+            raise self.fail(f"refers to unknown quantity {name!r}; known quantities: {known}")
+        return np.asarray(source[name], dtype=float)
+
+    def select(self, node: ast.Subscript) -> float:
+        vector = self.visit(node.value)
+        if np.ndim(vector) != 1:
+            raise self.fail("selects a condition from something that is not a quantity")
+        wanted: dict[str, float] = {}
+        for cmp in _selectors(node.slice):
+            if not (isinstance(cmp.left, ast.Name) and len(cmp.ops) == 1 and isinstance(cmp.ops[0], ast.Eq)
+                    and isinstance(cmp.comparators[0], ast.Constant)):
+                raise self.fail("has a condition selector that is not of the form name=number")
+            wanted[cmp.left.id] = float(cmp.comparators[0].value)
+        if not wanted or len(wanted) != len(_selectors(node.slice)) or len(_selectors(node.slice)) != len(
+                node.slice.elts if isinstance(node.slice, ast.Tuple) else [node.slice]):
+            raise self.fail("has a condition selector that is not of the form name=number")
+        names = set(self.conditions[0]) if self.conditions else set()
+        unknown = set(wanted) - names
+        if unknown:
+            raise self.fail(f"selects unknown condition {sorted(unknown)[0]!r}; conditions: {', '.join(sorted(names))}")
+        hits = [i for i, c in enumerate(self.conditions)
+                if all(math.isclose(float(c[k]), v, rel_tol=1e-9, abs_tol=1e-12) for k, v in wanted.items())]
+        if len(hits) != 1:
+            shown = ", ".join(f"{k}={v:g}" for k, v in wanted.items())
+            raise self.fail(f"selects {shown}, which {'is not one of' if not hits else 'matches several of'} the campaign's conditions")
+        return float(vector[hits[0]])
+
+    def call(self, node: ast.Call) -> Any:
+        if not isinstance(node.func, ast.Name) or node.func.id not in FUNCTIONS:
+            name = node.func.id if isinstance(node.func, ast.Name) else "that"
+            raise self.fail(f"calls {name!r}, which is not allowed; allowed functions: {', '.join(FUNCTIONS)}")
+        if node.keywords or not node.args:
+            raise self.fail(f"calls {node.func.id}() with keywords or no arguments; give it positional values")
+        args = [self.visit(a) for a in node.args]
+        name = node.func.id
+        if name in REDUCERS and len(args) == 1:
+            return float(FUNCTIONS[name](args[0]))
+        if name in ("min", "max") and len(args) > 1:
+            reduce = np.minimum if name == "min" else np.maximum
+            out = args[0]
+            for a in args[1:]:
+                out = reduce(out, a)
+            return out
+        if len(args) != 1:
+            raise self.fail(f"calls {name}() with {len(args)} arguments; it takes one")
+        return FUNCTIONS[name](args[0])
+
+
+@dataclass(frozen=True)
+class Score:
+    """A design's goal values: the objective, each constraint's worst margin, and feasibility."""
+
+    objective: float
+    constraints: dict[str, float]
+    feasible: bool
+
+
+@dataclass(frozen=True)
+class Goal:
+    """The objective and constraints of a campaign, ready to score designs."""
+
+    sense: str
+    objective: Expression
+    constraints: tuple[Constraint, ...]
+
+    def uses_baseline(self) -> bool:
+        return self.objective.uses_baseline() or any(c.uses_baseline() for c in self.constraints)
+
+    def score(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> Score:
+        """Score one design from its quantities, each of shape (n_conditions,)."""
+        raw = self.objective.evaluate(values, baseline, conditions)
+        objective = float(np.asarray(raw, dtype=float).reshape(-1)[0]) if np.size(raw) == 1 else float("nan")
+        margins = {c.source: c.margin(values, baseline, conditions) for c in self.constraints}
+        feasible = all(m <= 0.0 for m in margins.values()) and np.isfinite(objective)
+        return Score(objective, margins, bool(feasible))
+
+    def better(self, a: float, b: float) -> bool:
+        """True when objective ``a`` is better than ``b``."""
+        return a < b if self.sense == "minimize" else a > b

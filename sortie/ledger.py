@@ -1,0 +1,401 @@
+"""The ledger: one SQLite file per campaign, the single record that status, export and resume read.
+
+Write before you act: a case row is committed as ``submitting`` before its solver starts, and as
+``running`` with its job id as soon as that is known, so an interrupted campaign can always tell
+what was in flight. Every state change is one short transaction (``BEGIN IMMEDIATE``) on a
+connection owned by one thread; readers (``status --watch``, reports) open their own read-only
+connection, which WAL mode lets run beside the writer.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+import time
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from sortie.errors import LedgerError
+
+SCHEMA_VERSION = 1
+LEDGER_NAME = "ledger.sqlite"
+CASE_STATES = ("planned", "submitting", "running", "done", "failed")
+DESIGN_STATES = ("pending", "done", "failed")
+
+_SCHEMA = """
+CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE designs (
+    id INTEGER PRIMARY KEY,
+    stage TEXT NOT NULL,
+    reason TEXT NOT NULL,
+    values_json TEXT NOT NULL,
+    unit_json TEXT NOT NULL,
+    status TEXT NOT NULL DEFAULT 'pending' CHECK (status IN ('pending', 'done', 'failed')),
+    objective REAL,
+    constraints_json TEXT,
+    feasible INTEGER,
+    created_at REAL NOT NULL,
+    finished_at REAL
+);
+CREATE TABLE cases (
+    id INTEGER PRIMARY KEY,
+    design_id INTEGER NOT NULL REFERENCES designs(id),
+    condition_index INTEGER NOT NULL,
+    condition_json TEXT NOT NULL,
+    state TEXT NOT NULL DEFAULT 'planned'
+        CHECK (state IN ('planned', 'submitting', 'running', 'done', 'failed')),
+    attempts INTEGER NOT NULL DEFAULT 0,
+    job_id TEXT,
+    workdir TEXT,
+    started_at REAL,
+    ended_at REAL,
+    quantities_json TEXT,
+    failure_class TEXT,
+    failure_reason TEXT,
+    UNIQUE (design_id, condition_index)
+);
+CREATE TABLE attempts (
+    id INTEGER PRIMARY KEY,
+    case_id INTEGER NOT NULL REFERENCES cases(id),
+    number INTEGER NOT NULL,
+    state TEXT NOT NULL,
+    job_id TEXT,
+    pgid INTEGER,
+    started_at REAL NOT NULL,
+    ended_at REAL,
+    failure_class TEXT,
+    reason TEXT,
+    UNIQUE (case_id, number)
+);
+CREATE TABLE events (
+    id INTEGER PRIMARY KEY,
+    at REAL NOT NULL,
+    kind TEXT NOT NULL,
+    message TEXT NOT NULL,
+    data_json TEXT
+);
+CREATE INDEX cases_by_state ON cases(state);
+CREATE INDEX cases_by_design ON cases(design_id);
+"""
+
+
+@dataclass(frozen=True)
+class DesignRow:
+    """A design as recorded; ``values`` are physical, ``unit`` the unit-cube point."""
+
+    id: int
+    stage: str
+    reason: str
+    values: dict[str, Any]
+    unit: list[float]
+    status: str
+    objective: float | None
+    constraints: dict[str, float] | None
+    feasible: bool | None
+
+
+@dataclass(frozen=True)
+class CaseRow:
+    """A case as recorded."""
+
+    id: int
+    design_id: int
+    condition_index: int
+    condition: dict[str, float]
+    state: str
+    attempts: int
+    job_id: str | None
+    workdir: str | None
+    started_at: float | None
+    ended_at: float | None
+    quantities: dict[str, float] | None
+    failure_class: str | None
+    failure_reason: str | None
+
+    @property
+    def name(self) -> str:
+        """Readable case name, also used for its folder and job name."""
+        return case_name(self.design_id, self.condition_index)
+
+
+def case_name(design_id: int, condition_index: int) -> str:
+    return f"d{design_id:04d}-c{condition_index}"
+
+
+class Ledger:
+    """The campaign's SQLite ledger. Use :meth:`create` or :meth:`open`; close when done.
+
+    Parameters
+    ----------
+    path : Path
+        The SQLite file (``<campaign>/ledger.sqlite``).
+    readonly : bool
+        Open without write access, for watchers and reports while a campaign runs.
+    """
+
+    def __init__(self, path: Path, *, readonly: bool = False) -> None:
+        self.path = Path(path)
+        self.readonly = readonly
+        try:
+            if readonly:
+                self._conn = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, isolation_level=None, timeout=30)
+            else:
+                self._conn = sqlite3.connect(self.path, isolation_level=None, timeout=30)
+                self._conn.execute("PRAGMA journal_mode=WAL")
+                self._conn.execute("PRAGMA synchronous=NORMAL")
+            self._conn.execute("PRAGMA foreign_keys=ON")
+            self._conn.execute("PRAGMA busy_timeout=30000")
+        except sqlite3.Error as err:
+            raise LedgerError(f"{self.path}: cannot open the ledger ({err}); check the folder exists and is writable") from None
+        self._conn.row_factory = sqlite3.Row
+
+    # -- lifecycle -------------------------------------------------------------------------
+    @classmethod
+    def create(cls, path: Path, meta: Mapping[str, str]) -> Ledger:
+        """Create a new ledger with its schema and metadata in one transaction."""
+        if Path(path).exists():
+            raise LedgerError(f"{path}: a ledger already exists here; open it instead of creating one")
+        ledger = cls(path)
+        try:
+            with ledger.transaction() as c:
+                for stmt in _SCHEMA.strip().split(";\n"):
+                    if stmt.strip():
+                        c.execute(stmt)
+                rows = {"schema_version": str(SCHEMA_VERSION), "created_at": str(time.time()), **meta}
+                c.executemany("INSERT INTO meta(key, value) VALUES (?, ?)", rows.items())
+        except BaseException:
+            ledger.close()
+            Path(path).unlink(missing_ok=True)
+            raise
+        return ledger
+
+    @classmethod
+    def open(cls, path: Path, *, readonly: bool = False) -> Ledger:
+        """Open an existing ledger and check its schema version."""
+        if not Path(path).is_file():
+            raise LedgerError(f"{path}: no ledger here; give the folder of a campaign started with 'sortie run'")
+        ledger = cls(path, readonly=readonly)
+        try:
+            version = ledger.meta().get("schema_version")
+        except sqlite3.DatabaseError as err:
+            ledger.close()
+            raise LedgerError(f"{path}: not a sortie ledger ({err})") from None
+        if version != str(SCHEMA_VERSION):
+            ledger.close()
+            raise LedgerError(f"{path}: ledger schema version {version} is not supported; this sortie reads version {SCHEMA_VERSION}")
+        return ledger
+
+    def close(self) -> None:
+        self._conn.close()
+
+    def __enter__(self) -> Ledger:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    @contextmanager
+    def transaction(self) -> Iterator[sqlite3.Connection]:
+        """One atomic write: everything inside commits together or not at all."""
+        self._conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self._conn
+        except BaseException:
+            self._conn.execute("ROLLBACK")
+            raise
+        self._conn.execute("COMMIT")
+
+    # -- writes ----------------------------------------------------------------------------
+    def add_design(self, *, stage: str, reason: str, values: Mapping[str, Any], unit: Sequence[float],
+                   conditions: Sequence[Mapping[str, float]]) -> int:
+        """Record a design and its planned cases (one per condition) together."""
+        now = time.time()
+        with self.transaction() as c:
+            cur = c.execute(
+                "INSERT INTO designs(stage, reason, values_json, unit_json, created_at) VALUES (?, ?, ?, ?, ?)",
+                (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]), now),
+            )
+            design_id = int(cur.lastrowid)
+            c.executemany(
+                "INSERT INTO cases(design_id, condition_index, condition_json) VALUES (?, ?, ?)",
+                [(design_id, i, json.dumps(dict(cond))) for i, cond in enumerate(conditions)],
+            )
+            self._event(c, "design", f"design {design_id} added ({stage}: {reason})", {"design": design_id})
+        return design_id
+
+    def mark_submitting(self, case_id: int, workdir: Path) -> int:
+        """Commit that a case is about to start; returns the attempt number."""
+        now = time.time()
+        with self.transaction() as c:
+            row = c.execute("SELECT attempts, state FROM cases WHERE id = ?", (case_id,)).fetchone()
+            if row is None:
+                raise LedgerError(f"case {case_id} is not in the ledger")
+            number = int(row["attempts"]) + 1
+            c.execute(
+                "UPDATE cases SET state = 'submitting', attempts = ?, workdir = ?, started_at = ?, ended_at = NULL,"
+                " job_id = NULL, failure_class = NULL, failure_reason = NULL WHERE id = ?",
+                (number, str(workdir), now, case_id),
+            )
+            c.execute("INSERT INTO attempts(case_id, number, state, started_at) VALUES (?, ?, 'submitting', ?)",
+                      (case_id, number, now))
+        return number
+
+    def mark_running(self, case_id: int, job_id: str, pgid: int | None = None) -> None:
+        """Record the job id (pid or scheduler id) as soon as it is known."""
+        with self.transaction() as c:
+            c.execute("UPDATE cases SET state = 'running', job_id = ? WHERE id = ?", (job_id, case_id))
+            c.execute(
+                "UPDATE attempts SET state = 'running', job_id = ?, pgid = ? WHERE case_id = ? AND number ="
+                " (SELECT attempts FROM cases WHERE id = ?)",
+                (job_id, pgid, case_id, case_id),
+            )
+
+    def finish_case(self, case_id: int, *, quantities: Mapping[str, float] | None = None,
+                    failure_class: str | None = None, reason: str | None = None) -> None:
+        """Record a case's end: its quantities, or the class and reason of its failure."""
+        ok = failure_class is None
+        now = time.time()
+        state = "done" if ok else "failed"
+        with self.transaction() as c:
+            c.execute(
+                "UPDATE cases SET state = ?, ended_at = ?, quantities_json = ?, failure_class = ?, failure_reason = ?"
+                " WHERE id = ?",
+                (state, now, json.dumps(dict(quantities)) if ok and quantities is not None else None,
+                 failure_class, reason, case_id),
+            )
+            c.execute(
+                "UPDATE attempts SET state = ?, ended_at = ?, failure_class = ?, reason = ? WHERE case_id = ? AND number ="
+                " (SELECT attempts FROM cases WHERE id = ?)",
+                (state, now, failure_class, reason, case_id, case_id),
+            )
+            if not ok:
+                self._event(c, "case-failed", f"case {case_id} failed ({failure_class}): {reason}", {"case": case_id})
+
+    def requeue(self, case_id: int, *, why: str, reason: str) -> None:
+        """Put a case back to ``planned``; its current attempt ends as ``why`` (lost, interrupted)."""
+        case_sql, attempt_sql = _requeue_sql()
+        with self.transaction() as c:
+            c.execute(attempt_sql, (why, time.time(), reason, case_id, case_id))
+            c.execute(case_sql, (case_id,))
+            self._event(c, "case-requeued", f"case {case_id} requeued ({why}): {reason}", {"case": case_id})
+
+    def finish_design(self, design_id: int, *, status: str, objective: float | None = None,
+                      constraints: Mapping[str, float] | None = None, feasible: bool | None = None) -> None:
+        """Record a design's goal values once all its cases are in."""
+        if status not in DESIGN_STATES:
+            raise ValueError(f"status must be one of {DESIGN_STATES}, got {status!r}")
+        with self.transaction() as c:
+            c.execute(
+                "UPDATE designs SET status = ?, objective = ?, constraints_json = ?, feasible = ?, finished_at = ?"
+                " WHERE id = ?",
+                (status, objective, json.dumps(dict(constraints)) if constraints is not None else None,
+                 None if feasible is None else int(feasible), time.time(), design_id),
+            )
+
+    def event(self, kind: str, message: str, data: Mapping[str, Any] | None = None) -> None:
+        with self.transaction() as c:
+            self._event(c, kind, message, data)
+
+    @staticmethod
+    def _event(c: sqlite3.Connection, kind: str, message: str, data: Mapping[str, Any] | None) -> None:
+        c.execute("INSERT INTO events(at, kind, message, data_json) VALUES (?, ?, ?, ?)",
+                  (time.time(), kind, message, json.dumps(dict(data)) if data else None))
+
+    def set_meta(self, key: str, value: str) -> None:
+        with self.transaction() as c:
+            c.execute("INSERT INTO meta(key, value) VALUES (?, ?) ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+                      (key, value))
+
+    # -- reads -----------------------------------------------------------------------------
+    def meta(self) -> dict[str, str]:
+        return {r["key"]: r["value"] for r in self._conn.execute("SELECT key, value FROM meta")}
+
+    def designs(self, *, status: str | None = None) -> list[DesignRow]:
+        sql = "SELECT * FROM designs" + (" WHERE status = ?" if status else "") + " ORDER BY id"
+        return [_design(r) for r in self._conn.execute(sql, (status,) if status else ())]
+
+    def design(self, design_id: int) -> DesignRow:
+        row = self._conn.execute("SELECT * FROM designs WHERE id = ?", (design_id,)).fetchone()
+        if row is None:
+            raise LedgerError(f"design {design_id} is not in the ledger")
+        return _design(row)
+
+    def cases(self, *, design_id: int | None = None, states: Sequence[str] | None = None) -> list[CaseRow]:
+        clauses, args = [], []
+        if design_id is not None:
+            clauses.append("design_id = ?")
+            args.append(design_id)
+        if states:
+            clauses.append(f"state IN ({','.join('?' * len(states))})")
+            args.extend(states)
+        where = f" WHERE {' AND '.join(clauses)}" if clauses else ""
+        return [_case(r) for r in self._conn.execute(f"SELECT * FROM cases{where} ORDER BY id", args)]
+
+    def attempts(self) -> list[dict[str, Any]]:
+        return [dict(r) for r in self._conn.execute("SELECT * FROM attempts ORDER BY id")]
+
+    def events(self) -> list[dict[str, Any]]:
+        return [dict(r) for r in self._conn.execute("SELECT * FROM events ORDER BY id")]
+
+    def check_consistency(self) -> list[str]:
+        """Problems that would mean the ledger lies; empty when it is consistent."""
+        problems = []
+        q = self._conn.execute
+        for r in q("SELECT id FROM cases WHERE state = 'done' AND quantities_json IS NULL"):
+            problems.append(f"case {r['id']} is done but has no quantities")
+        for r in q("SELECT id FROM cases WHERE state = 'failed' AND failure_class IS NULL"):
+            problems.append(f"case {r['id']} failed without a failure class")
+        for r in q("SELECT c.id FROM cases c WHERE c.attempts != (SELECT COUNT(*) FROM attempts a WHERE a.case_id = c.id)"):
+            problems.append(f"case {r['id']} has an attempt count that does not match its attempt rows")
+        for r in q("SELECT d.id FROM designs d WHERE d.status = 'done' AND (d.objective IS NULL OR EXISTS"
+                   " (SELECT 1 FROM cases c WHERE c.design_id = d.id AND c.state != 'done'))"):
+            problems.append(f"design {r['id']} is done but lacks an objective or a finished case")
+        for r in q("SELECT d.id FROM designs d WHERE NOT EXISTS (SELECT 1 FROM cases c WHERE c.design_id = d.id)"):
+            problems.append(f"design {r['id']} has no cases")
+        return problems
+
+
+def _design(r: sqlite3.Row) -> DesignRow:
+    return DesignRow(
+        id=r["id"], stage=r["stage"], reason=r["reason"], values=json.loads(r["values_json"]),
+        unit=json.loads(r["unit_json"]), status=r["status"], objective=r["objective"],
+        constraints=json.loads(r["constraints_json"]) if r["constraints_json"] else None,
+        feasible=None if r["feasible"] is None else bool(r["feasible"]),
+    )
+
+
+def _case(r: sqlite3.Row) -> CaseRow:
+    return CaseRow(
+        id=r["id"], design_id=r["design_id"], condition_index=r["condition_index"],
+        condition=json.loads(r["condition_json"]), state=r["state"], attempts=r["attempts"], job_id=r["job_id"],
+        workdir=r["workdir"], started_at=r["started_at"], ended_at=r["ended_at"],
+        quantities=json.loads(r["quantities_json"]) if r["quantities_json"] else None,
+        failure_class=r["failure_class"], failure_reason=r["failure_reason"],
+    )
+
+
+def ledger_path(campaign_dir: Path) -> Path:
+    return Path(campaign_dir) / LEDGER_NAME
+
+
+def writable_dir(path: Path) -> None:
+    """Create ``path`` if needed and prove it is writable, or raise one clear LedgerError."""
+    try:
+        Path(path).mkdir(parents=True, exist_ok=True)
+        probe = Path(path) / f".write-test-{os.getpid()}"
+        probe.write_bytes(b"x")
+        probe.unlink()
+    except OSError as err:
+        raise LedgerError(f"{path}: the campaign folder cannot be written ({err.strerror or err}); choose a writable folder with --dir") from None
+
+
+def _requeue_sql() -> tuple[str, str]:
+    return (
+        "UPDATE cases SET state = 'planned', job_id = NULL, ended_at = NULL WHERE id = ?",
+        "UPDATE attempts SET state = ?, ended_at = ?, reason = ? WHERE case_id = ? AND number ="
+        " (SELECT attempts FROM cases WHERE id = ?)",
+    )

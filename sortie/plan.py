@@ -1,0 +1,76 @@
+"""Turning the config's plan into designs: the baseline first, then the initial experiment.
+
+The list is a pure function of the config and its seed, so a campaign that was interrupted
+while recording it can recompute the list and add only what is missing.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from sortie import sampling
+from sortie.space import DesignSpace
+
+if TYPE_CHECKING:
+    from sortie.config import StageSpec
+
+DEFAULT_FACTORIAL_LEVELS = 3
+DEFAULT_SWEEP_LEVELS = 5
+
+
+@dataclass(frozen=True)
+class ProposedDesign:
+    """A design not yet in the ledger: where it is, and why it was chosen."""
+
+    stage: str
+    reason: str
+    unit: tuple[float, ...]
+    values: dict[str, Any]
+
+
+def initial_unit_points(stage: StageSpec, space: DesignSpace, seed: int) -> np.ndarray:
+    """The initial experiment as unit-cube points, shape (n_points, n_dims); baseline excluded."""
+    d = space.n_dims
+    if stage.method == "sobol":
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", sampling.SamplingWarning)  # reported by `sortie check`
+            return sampling.sobol(int(stage.designs or 0), d, seed=seed)
+    if stage.method == "lhs":
+        return sampling.latin_hypercube(int(stage.designs or 0), d, seed=seed, optimization=stage.optimization)
+    if stage.method == "full-factorial":
+        wanted = stage.levels or DEFAULT_FACTORIAL_LEVELS
+        levels = [min(wanted, p.levels) if p.levels else wanted for p in space.free]
+        return sampling.full_factorial(levels)
+    if stage.method == "fractional-factorial":
+        return sampling.coded_to_unit(sampling.fractional_factorial(d))
+    if stage.method == "central-composite":
+        return sampling.coded_to_unit(sampling.central_composite(d, variant=stage.variant, center_points=stage.center_points))
+    if stage.method == "one-at-a-time":
+        sweep = sampling.one_at_a_time(space.baseline_unit(), stage.levels or DEFAULT_SWEEP_LEVELS)
+        return sweep[1:]  # the baseline itself is always run as design 1
+    raise ValueError(f"unknown sampling method {stage.method!r}")
+
+
+def sampling_notes(stage: StageSpec) -> list[str]:
+    """Advice (not errors) about a stage, shown by `sortie check`."""
+    notes = []
+    n = stage.designs
+    if stage.method == "sobol" and n is not None and n & (n - 1):
+        lo = 1 << (n.bit_length() - 1)
+        notes.append(f"plan.initial.designs: {n} is not a power of two, so the Sobol' points lose their balance; {lo} or {lo * 2} keep it")
+    return notes
+
+
+def initial_designs(stage: StageSpec, space: DesignSpace, seed: int) -> list[ProposedDesign]:
+    """The baseline and the initial experiment, in the order they are recorded and run."""
+    baseline = ProposedDesign("baseline", "reference design: every parameter at its baseline",
+                              tuple(space.baseline_unit()), space.baseline())
+    points = initial_unit_points(stage, space, seed)
+    designs = [baseline]
+    for i, (u, values) in enumerate(zip(points, space.to_values(points), strict=True), start=1):
+        designs.append(ProposedDesign("initial", f"{stage.method} point {i} of {len(points)}", tuple(float(x) for x in u), values))
+    return designs

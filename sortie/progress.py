@@ -1,0 +1,101 @@
+"""Progress of a running campaign, read from its ledger by a watcher thread.
+
+The watcher opens its own read-only connection, so it shows exactly what the ledger holds and
+works the same for the run in this process and for ``status`` on a campaign run elsewhere. On a
+terminal it draws a rich progress bar; otherwise it prints a plain line whenever a count changes,
+with no control characters, so logs of overnight runs stay readable.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+import threading
+from pathlib import Path
+from typing import Any, TextIO
+
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+from sortie.config import CampaignConfig
+from sortie.errors import LedgerError
+from sortie.ledger import Ledger, ledger_path
+from sortie.status import summary
+
+
+def describe(s: dict[str, Any]) -> str:
+    """One plain line: cases and designs against the plan, failures, and the best design so far."""
+    best = s["best"]
+    shown = "none yet"
+    if best is not None:
+        shown = f"design {best['design']} objective {best['objective']:.6g} ({'feasible' if best['feasible'] else 'infeasible'})"
+    return (f"cases {s['cases_done']}/{s['cases_total']} done, {s['cases_running']} running, {s['cases_failed']} failed"
+            f" | designs {s['designs_done'] + s['designs_failed']}/{s['budget_designs']} | best: {shown}")
+
+
+class LedgerWatcher:
+    """Shows campaign progress until :meth:`stop`; use as a context manager."""
+
+    def __init__(self, directory: Path, config: CampaignConfig, *, stream: TextIO, interval_s: float = 0.5) -> None:
+        self.directory = Path(directory)
+        self.config = config
+        self.stream = stream
+        self.interval_s = interval_s
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, name="sortie-progress", daemon=True)
+        self.tty = bool(getattr(stream, "isatty", lambda: False)())
+
+    def __enter__(self) -> LedgerWatcher:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join(timeout=5)
+
+    def _read(self) -> dict[str, Any] | None:
+        try:
+            with Ledger.open(ledger_path(self.directory), readonly=True) as ledger:
+                return summary(ledger, self.config)
+        except (LedgerError, sqlite3.Error):
+            return None  # the ledger is being created or briefly locked; try again next tick
+
+    def _loop(self) -> None:
+        if self.tty:
+            self._loop_rich()
+        else:
+            self._loop_plain()
+
+    def _loop_plain(self) -> None:
+        last = None
+        while True:
+            stopping = self._stop.is_set()
+            s = self._read()
+            if s is not None and s["cases_total"]:
+                line = describe(s)
+                if line != last:
+                    print(line, file=self.stream, flush=True)
+                    last = line
+            if stopping:
+                return
+            self._stop.wait(self.interval_s)
+
+    def _loop_rich(self) -> None:
+        console = Console(file=self.stream)
+        columns = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                   TextColumn("{task.fields[detail]}"))
+        with Progress(*columns, console=console, transient=False) as bar:
+            cases = bar.add_task("cases", total=None, detail="")
+            designs = bar.add_task("designs", total=self.config.budget.designs, detail="")
+            while True:
+                stopping = self._stop.is_set()
+                s = self._read()
+                if s is not None:
+                    best = s["best"]
+                    best_text = "" if best is None else f"best design {best['design']}: {best['objective']:.6g}" + ("" if best["feasible"] else " (infeasible)")
+                    bar.update(cases, total=max(s["cases_total"], 1), completed=s["cases_done"] + s["cases_failed"],
+                               detail=f"{s['cases_running']} running, {s['cases_failed']} failed")
+                    bar.update(designs, completed=s["designs_done"] + s["designs_failed"], detail=best_text)
+                if stopping:
+                    return
+                self._stop.wait(self.interval_s)
+

@@ -1,0 +1,81 @@
+"""What a campaign has done so far, computed from its ledger alone (safe while it runs).
+
+``summary`` feeds ``sortie status`` and the live progress display; ``design_table`` feeds
+``sortie export``. Every number here is a count or a copy of ledger rows, so it can be traced.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pandas as pd
+
+from sortie.config import CampaignConfig
+from sortie.ledger import DesignRow, Ledger
+
+
+def best_design(designs: list[DesignRow], sense: str) -> DesignRow | None:
+    """Best feasible design; if none is feasible, the one that violates its constraints least."""
+    scored = [d for d in designs if d.status == "done" and d.objective is not None]
+    feasible = [d for d in scored if d.feasible]
+    if feasible:
+        key = (lambda d: d.objective) if sense == "minimize" else (lambda d: -d.objective)  # type: ignore[operator]
+        return min(feasible, key=key)
+    if scored:
+        return min(scored, key=lambda d: max((d.constraints or {}).values(), default=0.0))
+    return None
+
+
+def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
+    """Counts of designs and cases by state, the budget, and the best design so far."""
+    designs = ledger.designs()
+    cases = ledger.cases()
+    best = best_design(designs, config.goal.sense)
+    by_class: dict[str, int] = {}
+    for c in cases:
+        if c.state == "failed" and c.failure_class:
+            by_class[c.failure_class] = by_class.get(c.failure_class, 0) + 1
+    return {
+        "campaign": config.campaign.name,
+        "budget_designs": config.budget.designs,
+        "designs_total": len(designs),
+        "designs_done": sum(d.status == "done" for d in designs),
+        "designs_failed": sum(d.status == "failed" for d in designs),
+        "designs_pending": sum(d.status == "pending" for d in designs),
+        "cases_total": len(cases),
+        "cases_done": sum(c.state == "done" for c in cases),
+        "cases_failed": sum(c.state == "failed" for c in cases),
+        "cases_running": sum(c.state in ("submitting", "running") for c in cases),
+        "cases_planned": sum(c.state == "planned" for c in cases),
+        "failures_by_class": by_class,
+        "goal": {"sense": config.goal.sense, "objective": config.goal.objective().source,
+                 "constraints": list(config.goal.subject_to)},
+        "best": None if best is None else {
+            "design": best.id, "objective": best.objective, "feasible": best.feasible,
+            "values": best.values, "constraints": best.constraints,
+        },
+        "baseline": _baseline(designs),
+    }
+
+
+def _baseline(designs: list[DesignRow]) -> dict[str, Any] | None:
+    base = next((d for d in designs if d.stage == "baseline"), None)
+    if base is None:
+        return None
+    return {"design": base.id, "objective": base.objective, "feasible": base.feasible, "status": base.status}
+
+
+def design_table(ledger: Ledger, config: CampaignConfig) -> pd.DataFrame:
+    """One row per design: id, stage, parameters, objective, constraint margins, feasible, status."""
+    rows = []
+    for d in ledger.designs():
+        row: dict[str, Any] = {"id": d.id, "stage": d.stage}
+        row.update({name: d.values.get(name) for name in config.parameters})
+        row["objective"] = d.objective
+        for source in config.goal.subject_to:
+            row[source] = (d.constraints or {}).get(source)
+        row["feasible"] = d.feasible
+        row["status"] = d.status
+        rows.append(row)
+    columns = ["id", "stage", *config.parameters, "objective", *config.goal.subject_to, "feasible", "status"]
+    return pd.DataFrame(rows, columns=columns)
