@@ -245,7 +245,7 @@ def diffuser_match_angle(ramp_angle: ArrayLike, boattail_length: ArrayLike) -> F
     """
     r = np.asarray(ramp_angle, dtype=float)
     b = np.asarray(boattail_length, dtype=float)
-    return _scalar_or_array(4.0 + 0.35 * (r - 8.0) - 2.0 * (b - 0.7))
+    return _scalar_or_array(8.5 + 0.35 * (r - 8.0) - 2.0 * (b - 0.7))
 
 
 def _lift(r, b, d, tc, g, n, m):  # type: ignore[no-untyped-def]
@@ -257,8 +257,8 @@ def _lift(r, b, d, tc, g, n, m):  # type: ignore[no-untyped-def]
     shock = (
         _SHOCK_LIFT
         * (0.3 + 1.2 * mismatch**2 / (1.0 + 0.2 * mismatch**2))
-        * (0.2 + 0.8 * g / 0.03)
-        * (0.7 + 0.21 / b)
+        * (0.1 + 0.9 * g / 0.03)
+        * (0.78 + 0.154 / b)
         * (1.0 + 25.0 * (tc - 0.12) ** 2)
         * (1.0 - 0.10 * (n - 3.0))
     )
@@ -270,20 +270,21 @@ def _lift(r, b, d, tc, g, n, m):  # type: ignore[no-untyped-def]
 def _drag(r, b, d, tc, g, n, m):  # type: ignore[no-untyped-def]
     cf = compressibility_factor(m)
     sonic = _logistic((m - 1.0) / 0.05)
-    friction = (0.060 + 0.042 * (b - 0.7)) * (1.0 - 0.05 * (m - 0.3))
+    friction = (0.060 + 0.03 * (b - 0.7)) * (1.0 - 0.05 * (m - 0.3))
     base = (
         0.10
+        * (1.0 + 1.0 * sonic)
         * (0.7 / b) ** 0.5
         * (1.0 + 0.03 * (r - 8.0))
-        * (1.0 - 0.04 * (d - 6.0) + 0.003 * (d - 6.0) ** 2)
+        * (1.0 - 0.05 * (d - 6.0) + 0.002 * (d - 6.0) ** 2)
     )
-    mcrit = critical_mach(tc, _suction(r, b, d, tc, g))
+    mcrit = critical_mach(0.06 + 0.5 * tc, _suction(r, b, d, tc, g))
     rise_cap = 0.25
     rise = rise_cap * np.tanh(np.asarray(lock_drag_rise(m, mcrit)) / rise_cap)
     ackeret_like = (math.pi / 2.0) * cf  # = 1/sqrt(M^2-1) above M 1.2, finite below
-    wave = sonic * 4.0 * ackeret_like * ((2.0 / 3.0) * tc**2 * 0.8 + 0.35 * np.radians(r) ** 2)
-    fins = n * (0.012 + 0.02 * sonic * cf)
-    spill = 1.5 * (g - 0.03) * (0.4 + 0.6 * sonic)
+    wave = sonic * 4.0 * ackeret_like * ((2.0 / 3.0) * tc**2 * 0.6 + 0.2 * np.radians(r) ** 2)
+    fins = n * (0.008 + 0.02 * sonic * cf)
+    spill = 1.5 * (g - 0.03) * sonic
     struts = 0.3 * tc**2
     return friction + base + rise + wave + fins + spill + struts
 

@@ -1,0 +1,92 @@
+"""The campaign flow in-process, on cheap python-adapter models, under a real Prefect API."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import pytest
+
+from sortie import campaign
+from sortie.adapters.registry import check_solver
+from sortie.config import load_config
+from sortie.errors import CampaignError
+from sortie.ledger import Ledger, ledger_path
+from tests.conftest import FIXTURES, branin_config, write_config
+
+pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("prefect_api")]
+
+
+def _run(tmp_path: Path, config: dict, folder: str = "camp") -> Path:
+    from sortie.flows.campaign import run_campaign
+
+    path = write_config(tmp_path, config)
+    cfg = load_config(path, check_solver=check_solver)
+    directory = tmp_path / folder
+    campaign.prepare(path, cfg, directory)
+    run_campaign(directory)
+    return directory
+
+
+def test_flow_runs_every_case_and_scores_every_design(tmp_path: Path) -> None:
+    directory = _run(tmp_path, branin_config())
+    with Ledger.open(ledger_path(directory)) as ledger:
+        designs, cases = ledger.designs(), ledger.cases()
+        assert ledger.check_consistency() == []
+        attempts = ledger.attempts()
+    assert len(designs) == 9 and len(cases) == 18
+    assert all(c.state == "done" and c.attempts == 1 for c in cases)
+    assert len(attempts) == 18
+    assert designs[0].stage == "baseline" and designs[0].values == {"x1": 0.0, "x2": 5.0}
+    for d in designs:
+        x1, x2 = d.values["x1"], d.values["x2"]
+        f = (x2 - 5.1 * x1**2 / (4 * math.pi**2) + 5 * x1 / math.pi - 6) ** 2 + 10 * (1 - 1 / (8 * math.pi)) * math.cos(x1) + 10
+        assert d.objective == pytest.approx(1.5 * f)  # mean over scale 1 and 2
+        assert d.constraints == {"g <= baseline.g + 10": pytest.approx(x1 + x2 - 15.0)}
+        assert d.feasible == (x1 + x2 - 15.0 <= 0)
+
+
+def test_failed_cases_fail_their_design_and_the_campaign_goes_on(tmp_path: Path) -> None:
+    config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:branin_failing_corner"})
+    directory = _run(tmp_path, config)
+    with Ledger.open(ledger_path(directory)) as ledger:
+        designs, cases = ledger.designs(), ledger.cases()
+    failed = [d for d in designs if d.status == "failed"]
+    assert failed, "the seeded design has points with x1 > 5"
+    assert all(d.values["x1"] > 5 for d in failed)
+    assert all(d.status == "done" for d in designs if d.values["x1"] <= 5)
+    bad = [c for c in cases if c.state == "failed"]
+    assert all(c.failure_class == "solver" and "mesh generation failed" in (c.failure_reason or "") for c in bad)
+
+
+def test_failed_baseline_stops_with_one_clear_reason(tmp_path: Path) -> None:
+    config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:always_fails"}, slots=1)
+    with pytest.raises(CampaignError, match="the baseline design failed .*solver diverged"):
+        _run(tmp_path, config)
+    with Ledger.open(ledger_path(tmp_path / "camp")) as ledger:
+        assert ledger.check_consistency() == []
+        started = [c for c in ledger.cases() if c.attempts > 0]
+    assert {c.design_id for c in started} == {1}, "nothing beyond the baseline is started once it has failed"
+
+
+def test_running_again_continues_without_repeating_finished_cases(tmp_path: Path) -> None:
+    from sortie.flows.campaign import run_campaign
+
+    directory = _run(tmp_path, branin_config())
+    with Ledger.open(ledger_path(directory)) as ledger:
+        # as if the orchestrator had died with two cases in flight and two not started
+        for case in ledger.cases()[-4:-2]:
+            ledger.requeue(case.id, why="lost", reason="test")
+            ledger.mark_submitting(case.id, directory / "cases" / case.name)
+        for case in ledger.cases()[-2:]:
+            ledger._conn.execute("UPDATE cases SET state = 'planned' WHERE id = ?", (case.id,))
+        ledger._conn.execute("UPDATE designs SET status = 'pending', objective = NULL WHERE id = 9")
+        before = {c.id: c.attempts for c in ledger.cases()}
+    run_campaign(directory)
+    with Ledger.open(ledger_path(directory)) as ledger:
+        after = {c.id: c.attempts for c in ledger.cases()}
+        assert all(c.state == "done" for c in ledger.cases())
+        assert ledger.design(9).status == "done"
+    rerun = {cid for cid in after if after[cid] != before[cid]}
+    assert rerun == set(list(after)[-4:]), "only the interrupted and the unstarted cases ran (again)"
+    assert all(after[cid] == 1 for cid in list(after)[:-4]), "finished cases are never repeated"
