@@ -21,9 +21,9 @@ from pathlib import Path
 from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field
+
 from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
 from sortie.adapters.template import render_folder, render_text
-
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
 from sortie.quantities import QuantityNotFound, read_quantity
@@ -82,7 +82,7 @@ class CommandAdapter:
         template = (base_dir / options.template).resolve()
         if not template.is_dir():
             problems.append(f"solver.template: {template} is not a folder; give the folder holding the solver's input files (relative to the config file)")
-        if "{{" not in options.command[0] and _which(options.command[0]) is None:
+        if "{{" not in options.command[0] and _which(options.command[0], template) is None:
             problems.append(f"solver.command: program {options.command[0]!r} is not found on PATH or in {Path(sys.executable).parent}; give an installed program or a path")
         for name, spec in quantities.items():
             if spec.file is None:
@@ -97,7 +97,7 @@ class CommandAdapter:
         context = case.context()
         render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
         argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
-        program = _which(argv[0]) if not os.path.isabs(argv[0]) else argv[0]
+        program = _which(argv[0], workdir)
         if program is None:
             raise AdapterError(f"solver.command: program {argv[0]!r} is not found on PATH; give an installed program or a path")
         env = {**os.environ, **self.options.env}
@@ -167,6 +167,9 @@ def kill_group(pgid: int, grace_s: float, proc: subprocess.Popen[bytes] | None) 
         os.killpg(pgid, signal.SIGKILL)
     if proc is not None:
         proc.wait()
+    deadline = time.monotonic() + 2.0  # SIGKILL is delivered asynchronously; wait until the group is gone
+    while _group_alive(pgid) and time.monotonic() < deadline:
+        time.sleep(0.01)
 
 
 def _group_alive(pgid: int) -> bool:
@@ -188,10 +191,12 @@ def _group_alive(pgid: int) -> bool:
     return False
 
 
-def _which(program: str) -> str | None:
-    """Find ``program`` on PATH, then beside this Python (a venv's console scripts)."""
+def _which(program: str, folder: Path) -> str | None:
+    """Find ``program``: a path relative to the case folder (a run script shipped in the template),
+    else on PATH, else beside this Python (a venv's console scripts)."""
     if os.sep in program:
-        return program if os.access(program, os.X_OK) else None
+        path = Path(folder) / program
+        return str(path) if os.access(path, os.X_OK) else None
     return shutil.which(program) or shutil.which(program, path=str(Path(sys.executable).parent))
 
 

@@ -18,8 +18,8 @@ from pathlib import Path
 from typing import Any
 
 from pydantic import BaseModel, ConfigDict
-from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
 
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
 
@@ -63,7 +63,7 @@ class PythonAdapter:
         workdir.mkdir(parents=True, exist_ok=True)
         try:
             returned = self._function(dict(case.values), dict(case.condition))
-        except Exception as exc:  # the user's model failing is data, recorded with its traceback
+        except (Exception, SystemExit) as exc:  # the user's model failing is data, recorded with its traceback
             (workdir / "error.txt").write_text(traceback.format_exc())
             outcome = CaseOutcome.failed("solver", f"{self.options.function} raised {type(exc).__name__}: {exc}; see {workdir / 'error.txt'}")
         else:

@@ -13,8 +13,8 @@ from pathlib import Path
 from typing import Any
 
 from pydantic import ValidationError
-from sortie.adapters.base import SolverAdapter
 
+from sortie.adapters.base import SolverAdapter
 from sortie.config import QuantitySpec, format_validation_errors
 from sortie.errors import AdapterError, ConfigError
 

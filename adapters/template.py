@@ -19,6 +19,7 @@ import jinja2
 
 from sortie.errors import AdapterError
 
+_CR = "\ufdd0"  # a Unicode noncharacter: never present in real input files
 _ENV = jinja2.Environment(
     undefined=jinja2.StrictUndefined,
     keep_trailing_newline=True,
@@ -30,8 +31,10 @@ _ENV = jinja2.Environment(
 
 def render_text(text: str, context: Mapping[str, Any], *, where: str) -> str:
     """Render one template text; ``where`` names it in the error message."""
+    # Jinja2 turns every CR LF and lone CR into LF; hide CRs from it so line endings survive.
+    hidden = text.replace("\r", _CR)
     try:
-        return _ENV.from_string(text).render(**context)
+        return _ENV.from_string(hidden).render(**context).replace(_CR, "\r")
     except jinja2.UndefinedError as err:
         known = ", ".join(sorted(context))
         raise AdapterError(f"{where}: {err.message}; placeholders available: {known}") from None

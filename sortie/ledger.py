@@ -142,11 +142,10 @@ class Ledger:
         self.readonly = readonly
         try:
             if readonly:
-                self._conn = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, isolation_level=None, timeout=30)
+                uri = self.path.absolute().as_uri() + "?mode=ro"
+                self._conn = sqlite3.connect(uri, uri=True, isolation_level=None, timeout=30)
             else:
                 self._conn = sqlite3.connect(self.path, isolation_level=None, timeout=30)
-                self._conn.execute("PRAGMA journal_mode=WAL")
-                self._conn.execute("PRAGMA synchronous=NORMAL")
             self._conn.execute("PRAGMA foreign_keys=ON")
             self._conn.execute("PRAGMA busy_timeout=30000")
         except sqlite3.Error as err:
@@ -161,6 +160,7 @@ class Ledger:
             raise LedgerError(f"{path}: a ledger already exists here; open it instead of creating one")
         ledger = cls(path)
         try:
+            ledger._writer_pragmas()
             with ledger.transaction() as c:
                 for stmt in _SCHEMA.strip().split(";\n"):
                     if stmt.strip():
@@ -181,13 +181,20 @@ class Ledger:
         ledger = cls(path, readonly=readonly)
         try:
             version = ledger.meta().get("schema_version")
-        except sqlite3.DatabaseError as err:
+        except sqlite3.DatabaseError as err:  # not SQLite at all, or SQLite without our tables
             ledger.close()
             raise LedgerError(f"{path}: not a sortie ledger ({err})") from None
         if version != str(SCHEMA_VERSION):
             ledger.close()
             raise LedgerError(f"{path}: ledger schema version {version} is not supported; this sortie reads version {SCHEMA_VERSION}")
+        if not readonly:
+            ledger._writer_pragmas()
         return ledger
+
+    def _writer_pragmas(self) -> None:
+        """WAL lets readers watch while the campaign writes; set only on a file known to be ours."""
+        self._conn.execute("PRAGMA journal_mode=WAL")
+        self._conn.execute("PRAGMA synchronous=NORMAL")
 
     def close(self) -> None:
         self._conn.close()
@@ -258,6 +265,8 @@ class Ledger:
                     failure_class: str | None = None, reason: str | None = None) -> None:
         """Record a case's end: its quantities, or the class and reason of its failure."""
         ok = failure_class is None
+        if ok and quantities is None:
+            raise ValueError("finish_case needs quantities for a case that succeeded, or a failure_class")
         now = time.time()
         state = "done" if ok else "failed"
         with self.transaction() as c:

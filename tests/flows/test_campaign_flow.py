@@ -61,7 +61,7 @@ def test_failed_cases_fail_their_design_and_the_campaign_goes_on(tmp_path: Path)
 
 def test_failed_baseline_stops_with_one_clear_reason(tmp_path: Path) -> None:
     config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:always_fails"}, slots=1)
-    with pytest.raises(CampaignError, match="the baseline design failed .*solver diverged"):
+    with pytest.raises(CampaignError, match=r"the baseline design failed .*solver diverged"):
         _run(tmp_path, config)
     with Ledger.open(ledger_path(tmp_path / "camp")) as ledger:
         assert ledger.check_consistency() == []
