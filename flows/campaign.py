@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
 from sortie.flows.runtime import configure_prefect
 
 configure_prefect()
@@ -25,10 +26,10 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 from prefect.futures import PrefectFuture  # noqa: E402
 from prefect.settings import PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
-from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, SolverAdapter  # noqa: E402
-from sortie.adapters.registry import build_adapter, check_solver  # noqa: E402
 
 from sortie import campaign as campaign_folder  # noqa: E402
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, SolverAdapter  # noqa: E402
+from sortie.adapters.registry import build_adapter, check_solver  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
 from sortie.errors import CampaignError, SortieError  # noqa: E402
 from sortie.goal import Goal  # noqa: E402

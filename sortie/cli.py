@@ -38,9 +38,9 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
 
     Example: sortie check configs/sled-aftbody.yaml
     """
+    cfg = _load_config(config)
     from sortie.plan import initial_unit_points, sampling_notes
 
-    cfg = _load_config(config)
     n_initial = len(initial_unit_points(cfg.plan.initial, cfg.space(), cfg.campaign.seed))
     n_cond = len(cfg.condition_list())
     for note in sampling_notes(cfg.plan.initial):

@@ -243,20 +243,7 @@ class CampaignConfig(_Section):
                 seen.setdefault(key, section)
         if all(p.fixed for p in self.parameters.values()):
             problems.append("parameters: every parameter is fixed; at least one must be free")
-        conditions = self.condition_list()
-        try:
-            objective = self.goal.objective()
-            objective.check(list(self.quantities), conditions)
-            value = objective.evaluate({q: np.arange(1.0, len(conditions) + 1) for q in self.quantities}, None if not objective.uses_baseline() else {q: np.ones(len(conditions)) for q in self.quantities}, conditions)
-            if np.ndim(value) and np.size(value) > 1:
-                problems.append(f"goal.{self.goal.sense}: {objective.source!r} gives one value per condition; reduce it to one number with max(), min(), mean() or a selector such as [{next(iter(self.conditions))}=...]")
-        except GoalError as err:
-            problems.append(str(err))
-        for i, source in enumerate(self.goal.subject_to):
-            try:
-                Constraint.parse(source, where=f"goal.subject_to[{i}]").check(list(self.quantities), conditions)
-            except GoalError as err:
-                problems.append(str(err))
+        problems.extend(goal_problems(self.goal, list(self.quantities), self.condition_list()))
         initial = self.plan.initial
         n_free = sum(not p.fixed for p in self.parameters.values())
         if initial.method == "fractional-factorial" and n_free < 3:
@@ -279,6 +266,46 @@ class CampaignConfig(_Section):
 
     def space(self) -> DesignSpace:
         return DesignSpace(tuple(spec.to_parameter(name) for name, spec in self.parameters.items()))
+
+
+def goal_problems(goal: GoalSection, quantities: list[str], conditions: list[dict[str, float]]) -> list[str]:
+    """Problems with the goal's expressions against the quantities and conditions."""
+    problems: list[str] = []
+    try:
+        objective = goal.objective()
+        objective.check(quantities, conditions)
+        ramp = {q: np.arange(1.0, len(conditions) + 1) for q in quantities}
+        value = objective.evaluate(ramp, ramp, conditions)
+        if np.ndim(value) and np.size(value) > 1:
+            problems.append(f"goal.{goal.sense}: {objective.source!r} gives one value per condition; reduce it to one number with max(), min(), mean() or a selector such as [{next(iter(conditions[0]))}=...]")
+    except GoalError as err:
+        problems.append(str(err))
+    for i, source in enumerate(goal.subject_to):
+        try:
+            Constraint.parse(source, where=f"goal.subject_to[{i}]").check(quantities, conditions)
+        except GoalError as err:
+            problems.append(str(err))
+    return problems
+
+
+def _goal_problems_from_raw(raw: dict[str, Any], failed_sections: set[str]) -> list[str]:
+    """Goal problems when the whole config did not validate but the sections the goal needs did.
+
+    Pydantic skips model validators once a field has failed; this keeps "every problem in one
+    pass" true for goal expressions, the most common thing to get wrong.
+    """
+    if failed_sections & {"goal", "quantities", "conditions"}:
+        return []
+    try:
+        goal = GoalSection.model_validate(raw.get("goal"))
+        conditions = CampaignConfig._conditions(dict(raw.get("conditions") or {}))
+        quantities = list(raw.get("quantities") or {})
+    except (ValidationError, ValueError, TypeError):
+        return []
+    if not conditions or not quantities:
+        return []
+    points = [dict(zip(conditions, p, strict=True)) for p in zip(*conditions.values(), strict=True)]
+    return goal_problems(goal, quantities, points)
 
 
 class _Problems(ValueError):
@@ -335,6 +362,8 @@ def parse_config(text: str, *, base_dir: Path, source: str = "config", check_sol
         config = CampaignConfig.model_validate(raw)
     except ValidationError as err:
         problems.extend(format_validation_errors(err, CampaignConfig))
+        failed = {str(e["loc"][0]) for e in err.errors() if e["loc"]}
+        problems.extend(_goal_problems_from_raw(raw, failed))
     if check_solver is not None and isinstance(raw.get("solver"), dict) and isinstance(raw["solver"].get("adapter"), str):
         problems.extend(check_solver(raw["solver"], base_dir, raw.get("quantities") if isinstance(raw.get("quantities"), dict) else {}))
     if problems:
@@ -351,20 +380,26 @@ def config_hash(text: str) -> str:
 
 def format_validation_errors(err: ValidationError, model: type[BaseModel], prefix: str = "") -> list[str]:
     """One line per pydantic error: ``key.path: message (got value)``, with "did you mean"."""
-    lines = []
+    lines: list[str] = []
+    typed: set[str] = set()
     for e in err.errors(include_url=False):
         ctx = e.get("ctx") or {}
         if isinstance(ctx.get("error"), _Problems):
             lines.extend(ctx["error"].lines)
             continue
-        path = prefix + ".".join(str(p) for p in e["loc"]) if e["loc"] else (prefix.rstrip(".") or "config")
+        loc = [p for p in e["loc"] if not (isinstance(p, str) and p in _TYPE_TAGS)]
+        path = prefix + ".".join(str(p) for p in loc) if loc else (prefix.rstrip(".") or "config")
         kind = e["type"]
+        if kind in _TYPE_ERRORS and path in typed:
+            continue  # one line per key when a value fits none of the types of a union
+        if kind in _TYPE_ERRORS:
+            typed.add(path)
         if kind == "extra_forbidden":
             *parent, key = e["loc"]
             allowed = _allowed_keys(model, parent)
             hint = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.6)
             did = f"; did you mean {hint[0]!r}?" if hint else ""
-            lines.append(f"{path}: unknown key{did} allowed here: {', '.join(allowed)}" if not did else f"{path}: unknown key{did} (allowed here: {', '.join(allowed)})")
+            lines.append(f"{path}: unknown key{did} (allowed here: {', '.join(allowed)})")
         elif kind == "missing":
             lines.append(f"{path}: required key is missing")
         else:
@@ -373,6 +408,11 @@ def format_validation_errors(err: ValidationError, model: type[BaseModel], prefi
             value = "" if kind == "value_error" or isinstance(shown, dict) else f" (got {shown!r})"
             lines.append(f"{path}: {msg}{value}")
     return lines
+
+
+_TYPE_TAGS = {"float", "int", "str", "bool", "list[union[float,int,str]]"}
+_TYPE_ERRORS = {"float_type", "float_parsing", "int_type", "int_parsing", "string_type", "bool_type", "bool_parsing",
+                "int_from_float", "list_type", "dict_type"}
 
 
 def _allowed_keys(model: type[BaseModel], parent: list[Any]) -> list[str]:

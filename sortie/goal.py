@@ -40,6 +40,7 @@ FUNCTIONS: dict[str, Callable[..., Any]] = {
 REDUCERS = {"min", "max", "mean", "sum"}
 BASELINE = "baseline"
 RESERVED = frozenset(FUNCTIONS) | {BASELINE}
+MAX_LENGTH = 2000
 
 _BINOPS: dict[type, Callable[[Any, Any], Any]] = {
     ast.Add: np.add,
@@ -95,7 +96,10 @@ class Expression:
     def evaluate(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> Scalar | Vector:
         """Evaluate with ``values[q]`` of shape (n_conditions,) for each quantity ``q``."""
         with np.errstate(all="ignore"):
-            return _Evaluator(self, values, baseline, conditions).visit(self.tree)
+            try:
+                return _Evaluator(self, values, baseline, conditions).visit(self.tree)
+            except RecursionError:
+                raise GoalError(f"{self.where}: the expression is nested too deeply; split it or simplify it") from None
 
 
 @dataclass(frozen=True)
@@ -137,9 +141,13 @@ class Constraint:
 def _parse(source: str, where: str) -> ast.expr:
     if not isinstance(source, str) or not source.strip():
         raise GoalError(f"{where}: an expression is required, got {source!r}")
+    if len(source) > MAX_LENGTH:
+        raise GoalError(f"{where}: the expression is {len(source)} characters long; at most {MAX_LENGTH} are allowed")
     rewritten = _SELECTOR.sub(r"\1==", source)
     try:
         return ast.parse(rewritten.strip(), mode="eval").body
+    except (RecursionError, MemoryError):
+        raise GoalError(f"{where}: the expression is nested too deeply; split it or simplify it") from None
     except SyntaxError as err:
         raise GoalError(f"{where}: {source!r} is not a valid expression ({err.msg}); allowed: numbers, quantities, baseline.<quantity>, quantity[condition=value], + - * / **, {', '.join(FUNCTIONS)}") from None
 
@@ -156,6 +164,17 @@ def _is_selector_name(root: ast.expr, name: ast.Name) -> bool:
 def _selectors(node: ast.expr) -> list[ast.Compare]:
     items = node.elts if isinstance(node, ast.Tuple) else [node]
     return [i for i in items if isinstance(i, ast.Compare)]
+
+
+def _selector_number(node: ast.expr) -> float | None:
+    """The number of a selector value: a numeric constant, possibly signed; else None."""
+    sign = 1.0
+    if isinstance(node, ast.UnaryOp) and isinstance(node.op, ast.USub | ast.UAdd):
+        sign = -1.0 if isinstance(node.op, ast.USub) else 1.0
+        node = node.operand
+    if isinstance(node, ast.Constant) and isinstance(node.value, int | float) and not isinstance(node.value, bool):
+        return sign * float(node.value)
+    return None
 
 
 class _Evaluator:
@@ -204,14 +223,13 @@ class _Evaluator:
         if np.ndim(vector) != 1:
             raise self.fail("selects a condition from something that is not a quantity")
         wanted: dict[str, float] = {}
-        for cmp in _selectors(node.slice):
-            if not (isinstance(cmp.left, ast.Name) and len(cmp.ops) == 1 and isinstance(cmp.ops[0], ast.Eq)
-                    and isinstance(cmp.comparators[0], ast.Constant)):
+        items = node.slice.elts if isinstance(node.slice, ast.Tuple) else [node.slice]
+        for item in items:
+            number = _selector_number(item.comparators[0]) if isinstance(item, ast.Compare) and len(item.ops) == 1 else None
+            if not (isinstance(item, ast.Compare) and isinstance(item.left, ast.Name) and isinstance(item.ops[0], ast.Eq)
+                    and number is not None):
                 raise self.fail("has a condition selector that is not of the form name=number")
-            wanted[cmp.left.id] = float(cmp.comparators[0].value)
-        if not wanted or len(wanted) != len(_selectors(node.slice)) or len(_selectors(node.slice)) != len(
-                node.slice.elts if isinstance(node.slice, ast.Tuple) else [node.slice]):
-            raise self.fail("has a condition selector that is not of the form name=number")
+            wanted[item.left.id] = number
         names = set(self.conditions[0]) if self.conditions else set()
         unknown = set(wanted) - names
         if unknown:
@@ -225,7 +243,7 @@ class _Evaluator:
 
     def call(self, node: ast.Call) -> Any:
         if not isinstance(node.func, ast.Name) or node.func.id not in FUNCTIONS:
-            name = node.func.id if isinstance(node.func, ast.Name) else "that"
+            name = node.func.id if isinstance(node.func, ast.Name) else ast.unparse(node.func)
             raise self.fail(f"calls {name!r}, which is not allowed; allowed functions: {', '.join(FUNCTIONS)}")
         if node.keywords or not node.args:
             raise self.fail(f"calls {node.func.id}() with keywords or no arguments; give it positional values")

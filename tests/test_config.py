@@ -1,0 +1,321 @@
+"""Bad campaign configs are refused with one clear line per problem, never a traceback.
+
+Every case starts from the demo config (configs/sled-aftbody.yaml, invented rocket-sled data),
+changes one thing, and expects exactly one problem line that begins with the offending key path.
+The same cases run twice: in-process through :func:`sortie.config.parse_config` (unit speed)
+and through the real ``sortie check`` command as a subprocess (exit code 2, ``error: `` lines on
+stderr). The subprocesses run concurrently from one module fixture, since each one costs 1-2 s
+of interpreter start-up.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pytest
+import yaml
+
+from sortie.adapters.registry import check_solver
+from sortie.config import CampaignConfig, parse_config
+from sortie.errors import ConfigError
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "configs" / "sled-aftbody.yaml"
+DEMO_TEXT = DEMO.read_text(encoding="utf-8")
+CONFIG_NAME = "campaign.yaml"
+CLI_TIMEOUT_S = 120
+
+
+def _demo() -> dict[str, Any]:
+    return yaml.safe_load(DEMO_TEXT)
+
+
+def _line_of(text: str, prefix: str) -> int:
+    """1-based number of the first line of ``text`` that starts with ``prefix``."""
+    return next(i for i, line in enumerate(text.splitlines(), start=1) if line.startswith(prefix))
+
+
+@dataclass(frozen=True)
+class BadConfig:
+    """One bad config: how to make it, where the problem is, and words the message must hold.
+
+    ``key`` is what the problem line must start with: a key path such as ``parameters.ramp_angle``,
+    or for a file that is not YAML at all, ``{file}`` and the line number. ``{file}`` stands for
+    the config path as given on the command line.
+    """
+
+    id: str
+    key: str
+    expect: tuple[str, ...] = ()
+    mutate: Callable[[dict[str, Any]], Any] | None = None
+    text: str | None = None
+    marks: tuple[Any, ...] = field(default=())
+
+    def config_text(self) -> str:
+        if self.text is not None:
+            return self.text
+        config = _demo()
+        assert self.mutate is not None
+        replaced = self.mutate(config)
+        return yaml.safe_dump(replaced if replaced is not None else config, sort_keys=False)
+
+
+def _param(name: str, **spec: Any) -> Callable[[dict[str, Any]], None]:
+    return lambda c: c["parameters"].__setitem__(name, spec)
+
+
+def _set(section: str, **values: Any) -> Callable[[dict[str, Any]], None]:
+    return lambda c: c[section].update(values)
+
+
+def _quantity(name: str, **values: Any) -> Callable[[dict[str, Any]], None]:
+    return lambda c: c["quantities"][name].update(values)
+
+
+def _rename_top(old: str, new: str) -> Callable[[dict[str, Any]], None]:
+    return lambda c: c.__setitem__(new, c.pop(old))
+
+
+def _fix_all(c: dict[str, Any]) -> None:
+    for spec in c["parameters"].values():
+        spec["fixed"] = True
+
+
+_TAB_TEXT = DEMO_TEXT.replace("  seed: 7", "\tseed: 7", 1)
+_INDENT_TEXT = DEMO_TEXT.replace("  seed: 7", "    seed: 7", 1)
+_SEED_LINE = _line_of(DEMO_TEXT, "  seed: 7")
+
+
+BAD_CONFIGS = [
+    BadConfig("upper-below-lower", "parameters.ramp_angle", ("upper (2) must be greater than lower (14)",),
+              _param("ramp_angle", lower=14.0, upper=2.0, baseline=8.0, unit="deg")),
+    BadConfig("baseline-outside-bounds", "parameters.ramp_angle", ("baseline (20)", "between lower (2) and upper (14)"),
+              _param("ramp_angle", lower=2.0, upper=14.0, baseline=20.0)),
+    BadConfig("baseline-not-a-choice", "parameters.fin_count", ("baseline (5)", "one of the choices [2, 3, 4]"),
+              _param("fin_count", choices=[2, 3, 4], baseline=5)),
+    BadConfig("choices-and-bounds", "parameters.fin_count", ("either choices or lower/upper",),
+              _param("fin_count", choices=[2, 3, 4], lower=2, upper=4, baseline=3)),
+    BadConfig("integer-with-fractional-bound", "parameters.fin_count", ("whole-number",),
+              _param("fin_count", lower=2, upper=4.5, integer=True, baseline=3)),
+    BadConfig("misspelled-top-level-key", "slot", ("unknown key", "did you mean 'slots'?"), _rename_top("slots", "slot")),
+    BadConfig("misspelled-parameter-key", "parameters.ramp_angle.uper", ("unknown key", "did you mean 'upper'?"),
+              _param("ramp_angle", lower=2.0, uper=14.0, baseline=8.0)),
+    BadConfig("missing-goal-section", "goal", ("required key is missing",), lambda c: c.pop("goal") and None),
+    BadConfig("parameter-named-max", "parameters.max", ("reserved",), _param("max", lower=0.0, upper=1.0, baseline=0.5)),
+    BadConfig("name-used-twice", "quantities.drag", ("already used in parameters",),
+              _param("drag", lower=0.0, upper=1.0, baseline=0.5)),
+    BadConfig("every-parameter-fixed", "parameters", ("at least one must be free",), _fix_all),
+    BadConfig("campaign-name-not-a-folder-name", "campaign.name", ("'sled aft/body'", "names a folder"),
+              _set("campaign", name="sled aft/body")),
+    BadConfig("conditions-of-unequal-length", "conditions", ("same length", "mach has 4", "yaw_deg has 2"),
+              _set("conditions", yaw_deg=[0.0, 4.0])),
+    BadConfig("misspelled-adapter", "solver.adapter", ("'comand' is not an installed adapter", "did you mean 'command'?"),
+              _set("solver", adapter="comand")),
+    BadConfig("unknown-command-option", "solver.timeout", ("unknown key", "did you mean 'timeout_s'?"),
+              _set("solver", timeout=30)),
+    BadConfig("missing-template-folder", "solver.template", ("no-such-template", "is not a folder"),
+              _set("solver", template="cases/no-such-template")),
+    BadConfig("program-not-on-path", "solver.command", ("'sled-solver-not-installed'", "not found on PATH"),
+              _set("solver", command=["sled-solver-not-installed", "case.in"])),
+    BadConfig("negative-timeout", "solver.timeout_s", ("greater than 0", "-5"), _set("solver", timeout_s=-5)),
+    BadConfig("pattern-without-value-group", "quantities.lift", ("(?P<value>...)",),
+              _quantity("lift", pattern=r"lift\s*=\s*(\S+)")),
+    BadConfig("quantity-with-two-rules", "quantities.drag", ("one reading rule, not 2", "pattern, key"),
+              _quantity("drag", pattern=r"drag\s*=\s*(?P<value>\S+)")),
+    BadConfig("invalid-regex", "quantities.lift", ("not a valid regular expression",),
+              _quantity("lift", pattern=r"lift\s*=\s*(?P<value>\S+")),
+    BadConfig("minimize-and-maximize", "goal", ("exactly one of minimize or maximize",), _set("goal", maximize="mean(drag)")),
+    BadConfig("goal-unknown-quantity", "goal.minimize", ("unknown quantity 'lyft'", "known quantities: drag, lift"),
+              _set("goal", minimize="max(lyft) - min(lyft)")),
+    BadConfig("goal-attribute-access", "goal.minimize", ("attribute access", "baseline.<quantity>"),
+              _set("goal", minimize="max(lift.__class__)")),
+    BadConfig("goal-calls-import", "goal.minimize", ("'__import__'", "not allowed"),
+              _set("goal", minimize="__import__('os')")),
+    BadConfig("goal-calls-eval", "goal.minimize", ("'eval'", "not allowed"), _set("goal", minimize="eval('1')")),
+    BadConfig("goal-lambda", "goal.minimize", ("not allowed",), _set("goal", minimize="(lambda: 1)()")),
+    BadConfig("constraint-calls-open", "goal.subject_to[0]", ("'open'", "not allowed"),
+              _set("goal", subject_to=["open('case.in') <= 1"])),
+    BadConfig("constraint-not-a-comparison", "goal.subject_to[0]", ("must be one comparison",),
+              _set("goal", subject_to=["drag - baseline.drag"])),
+    BadConfig("objective-stays-a-vector", "goal.minimize", ("one value per condition", "[mach=...]"),
+              _set("goal", minimize="lift")),
+    BadConfig("selector-at-unlisted-condition", "goal.minimize", ("mach=2", "not one of the campaign's conditions"),
+              _set("goal", minimize="drag[mach=2.0]")),
+    BadConfig("selector-of-unknown-condition", "goal.minimize", ("unknown condition 'speed'",),
+              _set("goal", minimize="drag[speed=1.1]")),
+    BadConfig("selector-value-is-a-string", "goal.minimize", ("not of the form name=number",),
+              _set("goal", minimize="drag[mach='fast']")),
+    BadConfig("selector-value-is-none", "goal.minimize", ("not of the form name=number",),
+              _set("goal", minimize="drag[mach=None]")),
+    BadConfig("budget-below-initial-design", "budget.designs", ("10 cannot hold", "16 designs", "at least 17"),
+              _set("budget", designs=10)),
+    BadConfig("sobol-without-designs", "plan.initial", ("'sobol' needs the number of designs",),
+              _set("plan", initial={"method": "sobol"})),
+    BadConfig("designs-for-central-composite", "plan.initial", ("sets its own number of designs",),
+              _set("plan", initial={"method": "central-composite", "designs": 10})),
+    BadConfig("unknown-sampling-method", "plan.initial.method", ("'sobel'", "'sobol'"),
+              _set("plan", initial={"method": "sobel", "designs": 16})),
+    BadConfig("zero-slots", "slots", ("greater than 0", "got 0"), lambda c: c.update(slots=0)),
+    BadConfig("yaml-tab-indent", f"{{file}} line {_SEED_LINE}", ("not valid YAML", "'\\t'"), text=_TAB_TEXT),
+    BadConfig("yaml-over-indent", f"{{file}} line {_SEED_LINE}", ("not valid YAML",), text=_INDENT_TEXT),
+    BadConfig("top-level-is-a-list", "{file}", ("top level must be a mapping", "got list"),
+              text="- campaign\n- parameters\n"),
+]
+CASE_PARAMS = [pytest.param(case, id=case.id, marks=case.marks) for case in BAD_CONFIGS]
+
+# Several problems of the field level at once; each line must be reported in the same pass.
+MANY_PROBLEMS = {
+    "parameters.ramp_angle": _param("ramp_angle", lower=14.0, upper=2.0, baseline=8.0),
+    "quantities.lift": _quantity("lift", pattern=r"lift=(?P<value>\S+"),
+    "plan.initial": _set("plan", initial={"method": "sobol"}),
+    "slots": lambda c: c.update(slots=0),
+    "solver.adapter": _set("solver", adapter="comand"),
+}
+
+
+def _many_problems_text() -> str:
+    config = _demo()
+    for mutate in MANY_PROBLEMS.values():
+        mutate(config)
+    return yaml.safe_dump(config, sort_keys=False)
+
+
+def _write_campaign(folder: Path, text: str) -> Path:
+    """Write ``text`` as a config beside its own solver template folder (cases/template)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    template = folder / "cases" / "template"
+    template.mkdir(parents=True, exist_ok=True)
+    (template / "case.in").write_text("ramp_angle = {{ ramp_angle }}\nmach = {{ mach }}\n")
+    path = folder / CONFIG_NAME
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def _check_problem_lines(lines: list[str], case: BadConfig, file: str) -> None:
+    key = case.key.format(file=file)
+    assert len(lines) == 1, f"expected one problem line, got {lines}"
+    line = lines[0]
+    assert line.startswith(f"{key}:") or line.startswith(f"{key},"), f"{line!r} does not start with {key!r}"
+    for words in case.expect:
+        assert words in line, f"{words!r} not in {line!r}"
+
+
+# --- in-process: unit speed -------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("case", CASE_PARAMS)
+def test_parse_config_names_the_key_of_each_single_problem(case: BadConfig, tmp_path: Path) -> None:
+    path = _write_campaign(tmp_path, case.config_text())
+    with pytest.raises(ConfigError) as info:
+        parse_config(path.read_text(), base_dir=tmp_path, source=CONFIG_NAME, check_solver=check_solver)
+    _check_problem_lines(info.value.problems, case, CONFIG_NAME)
+    assert str(info.value) == "\n".join(info.value.problems)
+
+
+def test_parse_config_accepts_the_demo_config() -> None:
+    config = parse_config(DEMO_TEXT, base_dir=DEMO.parent, source=str(DEMO), check_solver=check_solver)
+    assert isinstance(config, CampaignConfig)
+    assert list(config.parameters) == ["ramp_angle", "boattail_length", "diffuser_angle", "strut_thickness",
+                                       "skirt_gap", "fin_count", "sensor_mast_height", "livery_band_width"]
+    assert config.condition_list() == [{"mach": 0.6}, {"mach": 0.9}, {"mach": 1.1}, {"mach": 1.3}]
+    assert config.goal.sense == "minimize"
+
+
+def test_parse_config_reports_every_field_problem_in_one_pass(tmp_path: Path) -> None:
+    path = _write_campaign(tmp_path, _many_problems_text())
+    with pytest.raises(ConfigError) as info:
+        parse_config(path.read_text(), base_dir=tmp_path, check_solver=check_solver)
+    problems = info.value.problems
+    assert len(problems) == len(MANY_PROBLEMS), problems
+    for key in MANY_PROBLEMS:
+        assert sum(line.startswith(f"{key}:") for line in problems) == 1, (key, problems)
+
+
+def test_parse_config_reports_goal_problems_together_with_field_problems(tmp_path: Path) -> None:
+    config = _demo()
+    config["parameters"]["ramp_angle"] = {"lower": 14.0, "upper": 2.0, "baseline": 8.0}
+    config["goal"]["minimize"] = "max(lyft) - min(lyft)"
+    with pytest.raises(ConfigError) as info:
+        parse_config(yaml.safe_dump(config), base_dir=tmp_path)
+    keys = {line.split(":", 1)[0] for line in info.value.problems}
+    assert keys == {"parameters.ramp_angle", "goal.minimize"}, info.value.problems
+
+
+def test_parse_config_without_solver_check_skips_adapter_problems(tmp_path: Path) -> None:
+    config = _demo()
+    config["solver"]["command"] = ["sled-solver-not-installed"]
+    parsed = parse_config(yaml.safe_dump(config), base_dir=tmp_path)
+    assert parsed.solver["command"] == ["sled-solver-not-installed"]
+
+
+# --- through the real command line ------------------------------------------------------------
+
+
+def _sortie_check(path: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "sortie.cli", "check", str(path)], cwd=path.parent,
+                          capture_output=True, text=True, timeout=CLI_TIMEOUT_S, env={**os.environ, "NO_COLOR": "1"})
+
+
+@pytest.fixture(scope="module")
+def cli_runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, tuple[Path, subprocess.CompletedProcess[str]]]:
+    """Every bad config (and the many-problems config) checked by ``sortie check``, concurrently."""
+    root = tmp_path_factory.mktemp("bad-configs")
+    paths = {case.id: _write_campaign(root / case.id, case.config_text()) for case in BAD_CONFIGS}
+    paths["many-problems"] = _write_campaign(root / "many-problems", _many_problems_text())
+    with ThreadPoolExecutor(max_workers=max(2, (os.cpu_count() or 2) + 1)) as pool:
+        done = dict(zip(paths, pool.map(_sortie_check, paths.values()), strict=True))
+    return {name: (paths[name], done[name]) for name in paths}
+
+
+def _error_lines(result: subprocess.CompletedProcess[str]) -> list[str]:
+    lines = [line for line in result.stderr.splitlines() if line.strip()]
+    assert lines, "nothing on stderr"
+    assert all(line.startswith("error: ") for line in lines), result.stderr
+    return [line.removeprefix("error: ") for line in lines]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", CASE_PARAMS)
+def test_sortie_check_refuses_bad_config_with_one_error_line(
+        case: BadConfig, cli_runs: dict[str, tuple[Path, subprocess.CompletedProcess[str]]]) -> None:
+    path, result = cli_runs[case.id]
+    assert "Traceback" not in result.stdout + result.stderr, result.stderr
+    assert result.returncode == 2, (result.returncode, result.stderr)
+    assert result.stdout == ""
+    _check_problem_lines(_error_lines(result), case, str(path))
+
+
+@pytest.mark.slow
+def test_sortie_check_reports_all_problems_at_once(
+        cli_runs: dict[str, tuple[Path, subprocess.CompletedProcess[str]]]) -> None:
+    _, result = cli_runs["many-problems"]
+    assert "Traceback" not in result.stdout + result.stderr
+    assert result.returncode == 2
+    lines = _error_lines(result)
+    assert len(lines) == len(MANY_PROBLEMS), lines
+    assert sorted(line.split(":", 1)[0] for line in lines) == sorted(MANY_PROBLEMS)
+
+
+@pytest.mark.slow
+def test_sortie_check_accepts_the_demo_config() -> None:
+    result = _sortie_check(DEMO)
+    assert result.returncode == 0, result.stderr
+    assert "error" not in result.stderr
+    assert "ok - 8 free parameters, 4 conditions" in result.stdout
+    assert "baseline + 16 initial designs = 68 cases" in result.stdout
+
+
+def test_bad_config_cases_are_distinct_and_enough() -> None:
+    ids = [case.id for case in BAD_CONFIGS]
+    texts = [case.config_text() for case in BAD_CONFIGS]
+    assert len(set(ids)) == len(ids)
+    assert len(set(texts)) == len(texts)
+    assert DEMO_TEXT not in texts
+    assert sum(not case.marks for case in BAD_CONFIGS) >= 20
