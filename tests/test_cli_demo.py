@@ -1,0 +1,122 @@
+"""The demo campaign end to end through the real CLI: mock solver processes, SQLite ledger, Prefect."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import yaml
+
+from sortie.ledger import Ledger, ledger_path
+from tests.conftest import DEMO_CONFIG
+
+pytestmark = pytest.mark.slow
+
+
+def sortie(*args: str, env: dict[str, str], cwd: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "sortie.cli", *args], capture_output=True, text=True, env=env,
+                          cwd=cwd, timeout=600)
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, subprocess.CompletedProcess[str], dict[str, str]]:
+    """Run the demo config once into a fresh folder (not a terminal, so plain progress lines)."""
+    work = tmp_path_factory.mktemp("demo")
+    env = {**os.environ, "PREFECT_HOME": str(work / "prefect-home")}
+    env.pop("PREFECT_API_URL", None)
+    result = sortie("run", str(DEMO_CONFIG), "--dir", str(work / "camp"), env=env, cwd=work)
+    return work / "camp", result, env
+
+
+def test_demo_run_succeeds_quietly_with_plain_lines(demo) -> None:
+    _, result, _ = demo
+    assert result.returncode == 0, result.stderr
+    assert "Traceback" not in result.stdout + result.stderr
+    assert "\x1b" not in result.stdout, "no control characters when stdout is not a terminal"
+    assert "best design" in result.stdout and "must be confirmed by the real solver" in result.stdout
+    assert result.stderr.strip() == "", result.stderr
+
+
+def test_demo_ledger_holds_every_case_of_every_design(demo) -> None:
+    directory, _, _ = demo
+    config = yaml.safe_load(DEMO_CONFIG.read_text())
+    n_conditions = len(config["conditions"]["mach"])
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        designs, cases = ledger.designs(), ledger.cases()
+        assert ledger.check_consistency() == []
+    assert len(designs) == config["budget"]["designs"]
+    assert len(cases) == len(designs) * n_conditions
+    assert all(c.state == "done" for c in cases)
+    first = designs[0]
+    assert first.stage == "baseline"
+    assert first.values == {k: v["baseline"] for k, v in config["parameters"].items()}
+    assert min(c.started_at for c in cases if c.design_id == first.id) == min(c.started_at for c in cases)
+    assert all(d.status == "done" and d.objective is not None and d.feasible is not None for d in designs)
+    assert first.feasible and first.constraints == {"drag <= baseline.drag": 0.0}
+    # the objective is the swing of lift over the conditions, recomputed from the case rows
+    for d in designs:
+        lift = [c.quantities["lift"] for c in cases if c.design_id == d.id]
+        assert d.objective == pytest.approx(max(lift) - min(lift))
+    # every case ran in its own folder from the rendered template
+    for c in cases:
+        deck = (Path(c.workdir) / "case.in").read_text()
+        assert f"mach = {c.condition['mach']}" in deck
+
+
+def test_status_json_reports_the_counts(demo) -> None:
+    directory, _, env = demo
+    result = sortie("status", str(directory), "--json", env=env, cwd=directory.parent)
+    assert result.returncode == 0, result.stderr
+    status = json.loads(result.stdout)
+    assert status["designs_total"] == status["designs_done"] == 17
+    assert status["designs_failed"] == status["cases_failed"] == status["cases_running"] == 0
+    assert status["cases_done"] == 68
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        feasible = [d for d in ledger.designs() if d.feasible]
+    best = min(feasible, key=lambda d: d.objective)
+    assert status["best"]["design"] == best.id and status["best"]["objective"] == pytest.approx(best.objective)
+    assert status["best"]["feasible"] is True
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
+def test_export_writes_one_row_per_design(demo, suffix: str) -> None:
+    directory, _, env = demo
+    out = directory.parent / f"designs{suffix}"
+    result = sortie("export", str(directory), "--to", str(out), env=env, cwd=directory.parent)
+    assert result.returncode == 0, result.stderr
+    table = pd.read_csv(out) if suffix == ".csv" else pd.read_parquet(out)
+    config = yaml.safe_load(DEMO_CONFIG.read_text())
+    assert list(table.columns) == ["id", "stage", *config["parameters"], "objective", "drag <= baseline.drag",
+                                   "feasible", "status"]
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        designs = ledger.designs()
+    assert len(table) == len(designs)
+    assert table["objective"].tolist() == pytest.approx([d.objective for d in designs])
+
+
+def test_run_refuses_a_folder_holding_another_campaign(demo, tmp_path: Path) -> None:
+    directory, _, env = demo
+    other = yaml.safe_load(DEMO_CONFIG.read_text())
+    other["slots"] = 2
+    other["solver"]["template"] = str(DEMO_CONFIG.parent / "cases" / "template")
+    path = tmp_path / "other.yaml"
+    path.write_text(yaml.safe_dump(other))
+    result = sortie("run", str(path), "--dir", str(directory), env=env, cwd=tmp_path)
+    assert result.returncode == 2
+    assert "different config" in result.stderr and "Traceback" not in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1
+
+
+def test_run_into_an_unwritable_folder_says_so_in_one_line(tmp_path: Path) -> None:
+    blocker = tmp_path / "a-file"
+    blocker.write_text("")
+    env = {**os.environ, "PREFECT_HOME": str(tmp_path / "ph")}
+    result = sortie("run", str(DEMO_CONFIG), "--dir", str(blocker / "camp"), env=env, cwd=tmp_path)
+    assert result.returncode == 2
+    assert "cannot be written" in result.stderr and "Traceback" not in result.stderr
+    assert not (blocker / "camp").exists()
