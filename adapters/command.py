@@ -18,7 +18,6 @@ import time
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -137,13 +136,17 @@ class CommandAdapter:
         if code != 0:
             how = f"was killed by signal {-code}" if code < 0 else f"exited with code {code}"
             return CaseOutcome.failed("solver", f"the solver {how}{_last_line(stderr)}; see {stderr}")
-        raw: dict[str, Any] = {}
+        quantities: dict[str, float] = {}
         for name, spec in self.quantities.items():
             try:
-                raw[name] = read_quantity(workdir, name, spec)
+                raw = read_quantity(workdir, name, spec)
             except QuantityNotFound as err:
                 return CaseOutcome.failed("output", f"{err}; see {workdir / STDOUT}")
-        return check_quantities(raw, list(self.quantities), f"the output in {workdir}")
+            outcome = check_quantities({name: raw}, [name], f"output file {workdir / str(spec.file)}")
+            if not outcome.ok:
+                return outcome
+            quantities.update(outcome.quantities)
+        return CaseOutcome(quantities=quantities)
 
     def cancel(self, handle: JobHandle) -> None:
         run = self._running.pop(handle.case_id, None)

@@ -90,3 +90,57 @@ def test_running_again_continues_without_repeating_finished_cases(tmp_path: Path
     rerun = {cid for cid in after if after[cid] != before[cid]}
     assert rerun == set(list(after)[-4:]), "only the interrupted and the unstarted cases ran (again)"
     assert all(after[cid] == 1 for cid in list(after)[:-4]), "finished cases are never repeated"
+
+
+def _mock_config(**changes) -> dict:
+    import yaml
+
+    from tests.conftest import DEMO_CONFIG
+
+    config = yaml.safe_load(DEMO_CONFIG.read_text())
+    config["solver"]["template"] = str(DEMO_CONFIG.parent / "cases" / "template")
+    config["plan"] = {"initial": {"method": "lhs", "designs": 8}}
+    config["budget"] = {"designs": 9}
+    config.update(changes)
+    return config
+
+
+def test_mock_solver_mesh_failures_fail_only_their_designs(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("SORTIE_MOCK_MESH_FAIL_REGION", "ramp_angle > 9")
+    directory = _run(tmp_path, _mock_config())
+    with Ledger.open(ledger_path(directory)) as ledger:
+        designs, cases = ledger.designs(), ledger.cases()
+        assert ledger.check_consistency() == []
+    inside = {d.id for d in designs if d.values["ramp_angle"] > 9}
+    assert inside and inside != {d.id for d in designs}
+    assert {d.id for d in designs if d.status == "failed"} == inside
+    for c in cases:
+        if c.design_id in inside:
+            assert c.state == "failed" and c.failure_class == "solver"
+            assert "exited with code 4" in c.failure_reason and "mesh generation failed" in c.failure_reason
+            assert c.failure_reason.endswith("solver.stderr")
+        else:
+            assert c.state == "done"
+
+
+def test_garbage_output_is_an_output_failure_naming_the_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("SORTIE_MOCK_GARBAGE_RATE", "1")
+    with pytest.raises(CampaignError, match=r"the baseline design failed .*result\.out"):
+        _run(tmp_path, _mock_config())
+    with Ledger.open(ledger_path(tmp_path / "camp")) as ledger:
+        failed = [c for c in ledger.cases() if c.state == "failed"]
+        assert ledger.check_consistency() == []
+    assert failed and all(c.failure_class == "output" for c in failed)
+
+
+def test_hanging_solver_is_killed_at_its_timeout(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("SORTIE_MOCK_HANG_RATE", "1")
+    config = _mock_config()
+    config["solver"]["timeout_s"] = 1
+    config["solver"]["kill_grace_s"] = 0.5
+    with pytest.raises(CampaignError, match="timeout_s=1"):
+        _run(tmp_path, config)
+    with Ledger.open(ledger_path(tmp_path / "camp")) as ledger:
+        baseline_cases = ledger.cases(design_id=1)
+    assert all(c.state == "failed" and c.failure_class == "timeout" for c in baseline_cases)
+    assert all(c.ended_at - c.started_at < 10 for c in baseline_cases)
