@@ -38,6 +38,7 @@ CREATE TABLE designs (
     objective REAL,
     constraints_json TEXT,
     feasible INTEGER,
+    prediction_json TEXT,
     created_at REAL NOT NULL,
     finished_at REAL
 );
@@ -77,6 +78,14 @@ CREATE TABLE events (
     kind TEXT NOT NULL,
     message TEXT NOT NULL,
     data_json TEXT
+);
+CREATE TABLE models (
+    id INTEGER PRIMARY KEY,
+    at REAL NOT NULL,
+    target TEXT NOT NULL,
+    chosen TEXT NOT NULL,
+    n_points INTEGER NOT NULL,
+    scores_json TEXT NOT NULL
 );
 CREATE INDEX cases_by_state ON cases(state);
 CREATE INDEX cases_by_design ON cases(design_id);

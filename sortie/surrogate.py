@@ -1,0 +1,953 @@
+"""Surrogate models of a solver output over the unit cube, and their leave-one-out checks.
+
+A campaign spends hours of solver time per design, so every decision after the initial design
+(where to run next, when to stop, which parameters matter) is taken on a cheap model of the
+solver output instead. Three models live here, because no single one is right for every
+campaign:
+
+* :class:`GaussianProcessSurrogate` -- Kriging with an anisotropic Matern-5/2 kernel. It gives a
+  standard error, which expected improvement needs [1]_, and a Kriging-believer refit for
+  batches of designs that are still running [5]_.
+* :class:`QuadraticSurface` -- the classical second-order response surface fitted by least
+  squares [6]_. With a central composite design and a smooth response it is often the best and
+  always the most interpretable model.
+* :class:`RadialBasisSurrogate` -- a polyharmonic-spline interpolant. It has no hyper-parameters
+  to fit, so it is robust when a GP's likelihood is flat, but it gives no standard error.
+
+Each model exposes ``loo_residuals()``, the leave-one-out residuals ``y_i - yhat_(i)`` computed
+in closed form from the single fit (no refits): the hat matrix for least squares [3]_, Rippa's
+formula for radial basis functions [4]_ and Rasmussen & Williams eq. 5.12 for the GP [2]_.
+:func:`choose_surrogate` ranks the candidates on them. Cross-validation is used rather than the
+training error because two of the three models interpolate their data exactly.
+
+Every ``X`` is a float array of shape ``(n_points, n_dims)`` in the unit cube ``[0, 1]^n_dims``
+(the design space does the scaling), and every ``y`` has shape ``(n_points,)``. Failed solver runs
+must be dropped before fitting: NaN in ``y`` is an error, not missing data.
+
+References
+----------
+.. [1] D. R. Jones, M. Schonlau and W. J. Welch, "Efficient global optimization of expensive
+   black-box functions", J. Global Optim. 13(4):455-492, 1998.
+.. [2] C. E. Rasmussen and C. K. I. Williams, *Gaussian Processes for Machine Learning*,
+   MIT Press, 2006 (Alg. 2.1; section 5.4.2, eqs. 5.10-5.12).
+.. [3] D. M. Allen, "The relationship between variable selection and data augmentation and a
+   method for prediction", Technometrics 16(1):125-127, 1974.
+.. [4] S. Rippa, "An algorithm for selecting a good value for the parameter c in radial basis
+   function interpolation", Adv. Comput. Math. 11:193-210, 1999.
+.. [5] D. Ginsbourger, R. Le Riche and L. Carraro, "Kriging is well-suited to parallelize
+   optimization", in *Computational Intelligence in Expensive Optimization Problems*,
+   Springer ALO 2:131-162, 2010.
+.. [6] G. E. P. Box and K. B. Wilson, "On the experimental attainment of optimum conditions",
+   J. R. Stat. Soc. B 13(1):1-45, 1951.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import numbers
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.interpolate import RBFInterpolator
+from scipy.linalg import cho_solve, lu_factor, lu_solve, solve_triangular
+from scipy.spatial.distance import cdist
+from sklearn.base import BaseEstimator, RegressorMixin
+from sklearn.exceptions import ConvergenceWarning
+from sklearn.gaussian_process import GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import ConstantKernel, Kernel, Matern, WhiteKernel
+from sklearn.utils.validation import check_is_fitted
+
+__all__ = [
+    "GaussianProcessSurrogate",
+    "ModelScore",
+    "QuadraticSurface",
+    "RadialBasisSurrogate",
+    "Surrogate",
+    "choose_surrogate",
+    "make_surrogate",
+]
+
+# Tolerance on the unit cube: designs mapped from physical units may round a hair outside it.
+_CUBE_TOL = 1e-9
+# Rows per block in GP predictions: bounds the (rows x n_points) cross-kernel to a few tens of MB.
+_PREDICT_CHUNK = 4096
+# Smallest GP std on the normalised y scale (gp.md section 1: sigma >= 1e-9 std(y)). Values below
+# ~1e-8 are round-off from var = k(x, x) - v'v anyway, and a strictly positive std keeps EI defined.
+_STD_FLOOR = 1e-9
+# Diagonal jitter on the normalised y scale, and the largest value a LinAlgError retry may reach.
+_ALPHA_WITH_NOISE = 1e-10
+_ALPHA_WITHOUT_NOISE = 1e-8
+_ALPHA_MAX = 1e-4
+# A leverage this close to 1 means the point alone determines a term: its LOO residual is undefined.
+_LEVERAGE_TOL = 1e-10
+# RBF kernels without a shape parameter whose minimum polynomial degree is at most 1, so that the
+# linear tail used by Rippa's formula is valid; scipy's own formulas (epsilon = 1).
+_RBF_KERNELS = {
+    "linear": lambda r: -r,
+    "thin_plate_spline": lambda r: np.where(r == 0.0, 0.0, r**2 * np.log(np.where(r == 0.0, 1.0, r))),
+    "cubic": lambda r: r**3,
+}
+
+
+# --------------------------------------------------------------------------- validation
+
+
+def _check_X(X: object, *, n_dims: int | None = None, name: str = "X", in_cube: bool = False) -> np.ndarray:
+    """Return ``X`` as a finite float array of shape (n_points, n_dims); raise ValueError otherwise."""
+    try:
+        arr = np.asarray(X, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"{name} must be a numeric array of shape (n_points, n_dims): {exc}") from None
+    if arr.ndim != 2:
+        raise ValueError(f"{name} must have shape (n_points, n_dims), got shape {arr.shape}.")
+    if n_dims is not None and arr.shape[1] != n_dims:
+        raise ValueError(f"{name} must have {n_dims} columns (the model was fitted on {n_dims} dims), got {arr.shape[1]}.")
+    if not np.all(np.isfinite(arr)):
+        rows = np.flatnonzero(~np.all(np.isfinite(arr), axis=1))
+        raise ValueError(f"{name} contains NaN or infinite values in rows {rows[:10].tolist()}.")
+    if in_cube and arr.size and (arr.min() < -_CUBE_TOL or arr.max() > 1.0 + _CUBE_TOL):
+        raise ValueError(
+            f"{name} must lie in the unit cube [0, 1]^n_dims (map physical values through the design space first), "
+            f"got values in [{arr.min():.6g}, {arr.max():.6g}]."
+        )
+    return arr
+
+
+def _check_Xy(X: object, y: object, *, min_points: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """Validate a training set once: X in the unit cube, y finite and of matching length."""
+    X = _check_X(X, in_cube=True)
+    try:
+        y = np.asarray(y, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"y must be a numeric array of shape (n_points,): {exc}") from None
+    if y.ndim != 1:
+        raise ValueError(f"y must have shape (n_points,), got shape {y.shape}.")
+    if y.shape[0] != X.shape[0]:
+        raise ValueError(f"X and y must have the same number of points, got {X.shape[0]} and {y.shape[0]}.")
+    bad = np.flatnonzero(~np.isfinite(y))
+    if bad.size:
+        raise ValueError(f"y contains NaN or infinite values at rows {bad[:10].tolist()}; drop failed runs before fitting.")
+    if X.shape[0] < min_points:
+        raise ValueError(f"At least {min_points} points are needed to fit, got {X.shape[0]}.")
+    return X, y
+
+
+def _plural(k: int, word: str) -> str:
+    return f"{k} {word}" if k == 1 else f"{k} {word}s"
+
+
+def _record(caught: Sequence[warnings.WarningMessage], into: list[str]) -> None:
+    """Keep caught warnings as text; re-issue any that are not ConvergenceWarnings.
+
+    ConvergenceWarnings are expected in routine GP fits (a length-scale at its bound is a
+    sensitivity signal, not a fault; gp.md section 1), so they are kept for the log instead of
+    being printed on every refit. Anything else is unexpected and is not swallowed.
+    """
+    for w in caught:
+        into.append(f"{w.category.__name__}: {w.message}")
+        if not issubclass(w.category, ConvergenceWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
+# --------------------------------------------------------------------------- Gaussian process
+
+
+class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
+    """Kriging model: a Gaussian process with an anisotropic Matern-5/2 kernel.
+
+    The kernel is ``ConstantKernel * Matern(nu=2.5, one length-scale per column)``, plus a fitted
+    ``WhiteKernel`` when ``noise`` is True. Matern-5/2 is twice differentiable, which suits
+    smooth flow quantities better than the infinitely smooth squared exponential, and one
+    length-scale per column (ARD) lets inactive parameters drift to long length-scales, so the
+    fitted length-scales double as a sensitivity screen. Hyper-parameters are fitted by maximum
+    likelihood with scikit-learn's ``GaussianProcessRegressor``.
+
+    ``y`` is normalised here (subtract the mean, divide by the std) and scikit-learn is run with
+    ``normalize_y=False``. Keeping the normalisation fixed is what makes the Kriging-believer refit
+    in :meth:`believer` exact: re-normalising with the fantasised values included would rescale
+    the variance (gp.md section 2).
+
+    Parameters
+    ----------
+    n_restarts : int, default=2
+        Extra optimiser starts drawn at random in log-hyper-parameter space, after the start at the
+        initial kernel. A likelihood with several local optima is common for small n.
+    noise : bool, default=True
+        Add a fitted ``WhiteKernel`` (noise level bounded to [1e-10, 1e-2] on the normalised
+        scale). Keep it for solvers with iterative convergence noise or repeated designs; for
+        strictly deterministic solvers set False, and a small fixed jitter is used instead.
+    length_scale_bounds : tuple of float, default=(1e-2, 1e2)
+        Bounds on each length-scale in unit-cube coordinates. Below 1e-2 no realistic design can
+        resolve the variation; above ~10 the input is effectively inactive.
+    random_state : int, RandomState or None, default=None
+        Seeds the optimiser restarts; the same value gives the same fit.
+
+    Attributes
+    ----------
+    model_ : sklearn.gaussian_process.GaussianProcessRegressor
+        The fitted regressor, on the normalised y scale.
+    kernel_ : sklearn.gaussian_process.kernels.Kernel
+        The fitted kernel (including the ``WhiteKernel`` term when ``noise`` is True).
+    X_ : ndarray of shape (n_points, n_dims)
+        Training inputs.
+    y_ : ndarray of shape (n_points,)
+        Training targets in original units (with fantasised values appended for a believer model).
+    y_mean_ : float
+        Mean subtracted from y before fitting.
+    y_std_ : float
+        Scale y was divided by: the std of y, or, when y is constant, ``1e-6 * max(1, |y|)`` so that
+        the predicted std is negligible.
+    alpha_ : float
+        Diagonal jitter (normalised scale) that the final Cholesky factorisation needed.
+    n_pending_ : int
+        Number of trailing rows of ``X_``/``y_`` that are Kriging-believer fantasies (0 after ``fit``).
+    warnings_ : list of str
+        Warnings raised while fitting, as ``"Category: message"``, kept instead of printed.
+
+    Notes
+    -----
+    When ``np.ptp(y) == 0`` (every run hit the same cap, say) the likelihood has no information
+    on the kernel. The initial kernel is then used without optimisation, the model predicts the
+    constant with a negligible std, and ``warnings_`` says so: expected improvement is ~0
+    everywhere, and the caller should fall back to space-filling.
+
+    References
+    ----------
+    .. [1] D. R. Jones, M. Schonlau and W. J. Welch, "Efficient global optimization of expensive
+       black-box functions", J. Global Optim. 13(4):455-492, 1998.
+    .. [2] C. E. Rasmussen and C. K. I. Williams, *Gaussian Processes for Machine Learning*,
+       MIT Press, 2006.
+    .. [3] D. Ginsbourger, R. Le Riche and L. Carraro, "Kriging is well-suited to parallelize
+       optimization", Springer ALO 2:131-162, 2010.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> X = np.linspace(0, 1, 8)[:, None]
+    >>> gp = GaussianProcessSurrogate(random_state=0).fit(X, np.sin(6 * X[:, 0]))
+    >>> mean, std = gp.predict(np.array([[0.5]]), return_std=True)
+    >>> bool(abs(mean[0] - np.sin(3.0)) < 0.05)
+    True
+    """
+
+    name = "gp"
+    has_std = True
+
+    def __init__(
+        self,
+        *,
+        n_restarts: int = 2,
+        noise: bool = True,
+        length_scale_bounds: tuple[float, float] = (1e-2, 1e2),
+        random_state: int | np.random.RandomState | None = None,
+    ) -> None:
+        self.n_restarts = n_restarts
+        self.noise = noise
+        self.length_scale_bounds = length_scale_bounds
+        self.random_state = random_state
+
+    # ---- fitting
+
+    def _check_params(self) -> tuple[float, float]:
+        if isinstance(self.n_restarts, bool) or not isinstance(self.n_restarts, numbers.Integral) or self.n_restarts < 0:
+            raise ValueError(f"n_restarts must be a non-negative integer, got {self.n_restarts!r}.")
+        if not isinstance(self.noise, bool | np.bool_):
+            raise ValueError(f"noise must be True or False, got {self.noise!r}.")
+        try:
+            low, high = (float(b) for b in self.length_scale_bounds)
+        except (TypeError, ValueError):
+            raise ValueError(f"length_scale_bounds must be a pair (low, high), got {self.length_scale_bounds!r}.") from None
+        if not (0.0 < low < high < math.inf):
+            raise ValueError(f"length_scale_bounds must satisfy 0 < low < high < inf, got {self.length_scale_bounds!r}.")
+        return low, high
+
+    def _initial_kernel(self, n_dims: int, bounds: tuple[float, float]) -> Kernel:
+        # gp.md section 1: amplitude bounds suit a unit-variance (normalised) prior; 0.2 is a
+        # length-scale that n ~ 10 d points can resolve, moved inside the bounds if needed.
+        start = float(np.clip(0.2, *bounds))
+        signal = ConstantKernel(1.0, (1e-3, 1e3)) * Matern(
+            length_scale=np.full(n_dims, start), length_scale_bounds=bounds, nu=2.5
+        )
+        if self.noise:
+            return signal + WhiteKernel(1e-6, noise_level_bounds=(1e-10, 1e-2))
+        return signal
+
+    def fit(self, X: np.ndarray, y: np.ndarray) -> GaussianProcessSurrogate:
+        """Fit the kernel hyper-parameters by maximum likelihood.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_points, n_dims)
+            Designs in the unit cube; at least 2.
+        y : array-like of shape (n_points,)
+            Solver outputs, all finite.
+
+        Returns
+        -------
+        self : GaussianProcessSurrogate
+
+        Raises
+        ------
+        ValueError
+            On wrong shapes, NaN/inf, points outside the unit cube, or invalid parameters.
+        numpy.linalg.LinAlgError
+            If the kernel matrix cannot be factorised even with jitter 1e-4 (near-duplicate points).
+        """
+        bounds = self._check_params()
+        X, y = _check_Xy(X, y, min_points=2)
+        self.warnings_: list[str] = []
+        self.y_mean_ = float(np.mean(y))
+        constant = bool(np.ptp(y) == 0.0)
+        if constant:
+            self.y_std_ = 1e-6 * max(1.0, abs(self.y_mean_))
+            self.warnings_.append(
+                f"ConstantTarget: y is constant ({self.y_mean_:.6g}); the kernel was not fitted and the predicted std is "
+                "negligible, so use space-filling designs until y varies."
+            )
+        else:
+            self.y_std_ = float(np.std(y))
+        y_norm = (y - self.y_mean_) / self.y_std_
+        kernel = self._initial_kernel(X.shape[1], bounds)
+        self.model_, self.alpha_ = self._factorise(
+            kernel,
+            X,
+            y_norm,
+            alpha=_ALPHA_WITH_NOISE if self.noise else _ALPHA_WITHOUT_NOISE,
+            optimise=not constant,
+        )
+        if not np.isfinite(self.model_.log_marginal_likelihood_value_):
+            self.warnings_.append("NonFiniteLikelihood: the fitted log marginal likelihood is not finite.")
+        self.kernel_ = self.model_.kernel_
+        self.X_, self.y_ = X, y
+        self.n_pending_ = 0
+        return self
+
+    def _factorise(
+        self, kernel: Kernel, X: np.ndarray, y_norm: np.ndarray, *, alpha: float, optimise: bool
+    ) -> tuple[GaussianProcessRegressor, float]:
+        """Fit a regressor, retrying with 100x more jitter whenever the Cholesky factorisation fails.
+
+        A failed Cholesky means near-duplicate points or a kernel close to singular; a larger fixed
+        jitter is the remedy scikit-learn itself suggests (gp.md section 1).
+        """
+        while True:
+            model = GaussianProcessRegressor(
+                kernel,
+                alpha=alpha,
+                optimizer="fmin_l_bfgs_b" if optimise else None,
+                n_restarts_optimizer=int(self.n_restarts) if optimise else 0,
+                normalize_y=False,
+                random_state=self.random_state,
+            )
+            try:
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always")
+                    model.fit(X, y_norm)
+            except np.linalg.LinAlgError:
+                _record(caught, self.warnings_)
+                if alpha * 100 > _ALPHA_MAX * (1 + 1e-9):
+                    raise np.linalg.LinAlgError(
+                        f"The GP kernel matrix could not be factorised even with jitter alpha={alpha:g}; "
+                        "remove duplicate or near-duplicate design points."
+                    ) from None
+                self.warnings_.append(f"LinAlgError: Cholesky failed with alpha={alpha:g}; retried with {alpha * 100:g}.")
+                alpha *= 100
+                continue
+            _record(caught, self.warnings_)
+            return model, alpha
+
+    # ---- prediction
+
+    def _signal_kernel(self) -> Kernel:
+        """The fitted kernel without the WhiteKernel term: the covariance of the latent function."""
+        return self.kernel_.k1 if self.noise else self.kernel_
+
+    @property
+    def length_scales_(self) -> np.ndarray:
+        """Fitted ARD length-scales, shape (n_dims,), in unit-cube coordinates.
+
+        Short means the output varies quickly along that parameter; a value at the upper bound
+        means the parameter barely matters.
+        """
+        check_is_fitted(self, "kernel_")
+        matern = self._signal_kernel().k2
+        return np.broadcast_to(np.asarray(matern.length_scale, dtype=float), (self.X_.shape[1],)).copy()
+
+    def predict(self, X: np.ndarray, return_std: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+        """Posterior mean, and optionally std, of the latent function.
+
+        The std leaves out the fitted ``WhiteKernel`` noise: infill criteria ask how uncertain the
+        *function* is, not how noisy a new run would be. scikit-learn's own ``predict`` includes
+        that noise, so the variance is computed here from the same Cholesky factor (Rasmussen &
+        Williams 2006, Alg. 2.1, lines 4-6).
+
+        Parameters
+        ----------
+        X : array-like of shape (n_points, n_dims)
+            Where to predict; points outside the unit cube are allowed (extrapolation).
+        return_std : bool, default=False
+            Also return the posterior standard deviation.
+
+        Returns
+        -------
+        mean : ndarray of shape (n_points,)
+            Posterior mean in the units of y.
+        std : ndarray of shape (n_points,)
+            Latent posterior std in the units of y, floored at ``1e-9 * y_std_``. Only returned
+            when ``return_std`` is True.
+        """
+        check_is_fitted(self, "model_")
+        X = _check_X(X, n_dims=self.X_.shape[1])
+        signal = self._signal_kernel()
+        mean = np.empty(X.shape[0])
+        std = np.empty(X.shape[0])
+        for start in range(0, X.shape[0], _PREDICT_CHUNK):
+            rows = slice(start, start + _PREDICT_CHUNK)
+            # The WhiteKernel is zero between distinct input arrays, so the signal kernel alone
+            # gives the cross-covariance.
+            k_trans = signal(X[rows], self.X_)
+            mean[rows] = k_trans @ self.model_.alpha_
+            if return_std:
+                v = solve_triangular(self.model_.L_, k_trans.T, lower=True, check_finite=False)
+                var = signal.diag(X[rows]) - np.einsum("ij,ij->j", v, v)
+                std[rows] = np.sqrt(np.maximum(var, _STD_FLOOR**2))
+        mean = mean * self.y_std_ + self.y_mean_
+        if return_std:
+            return mean, std * self.y_std_
+        return mean
+
+    # ---- leave-one-out
+
+    def _loo_normalised(self) -> tuple[np.ndarray, np.ndarray]:
+        check_is_fitted(self, "model_")
+        if self.X_.shape[0] < 2:
+            raise ValueError("Leave-one-out needs at least 2 points.")
+        n = self.X_.shape[0]
+        k_inv = cho_solve((self.model_.L_, True), np.eye(n), check_finite=False)
+        diag = np.diag(k_inv)
+        # R&W 2006 eq. 5.12: y_i - mu_(i) = [K^-1 y]_i / [K^-1]_ii, and eq. 5.10: var_(i) = 1/[K^-1]_ii.
+        return self.model_.alpha_ / diag, 1.0 / np.sqrt(diag)
+
+    def loo_residuals(self) -> np.ndarray:
+        """Leave-one-out residuals ``y_i - yhat_(i)`` in closed form, shape (n_points,).
+
+        Each residual is what the model would get wrong at ``x_i`` had it been fitted without that
+        point, with the kernel hyper-parameters and the y normalisation held at their full-data
+        values (Rasmussen & Williams 2006, eq. 5.12). It costs one n x n inverse from the existing
+        Cholesky factor instead of n refits. Because the hyper-parameters have seen every point,
+        these residuals are slightly optimistic compared with a full cross-validation. On a
+        :meth:`believer` model the fantasised rows are included, so score the original model.
+
+        Returns
+        -------
+        residuals : ndarray of shape (n_points,)
+            In the units of y.
+        """
+        return self._loo_normalised()[0] * self.y_std_
+
+    def loo_std(self) -> np.ndarray:
+        """Leave-one-out predictive std at each training point, shape (n_points,).
+
+        ``sigma_(i) = 1 / sqrt([K^-1]_ii)`` (Rasmussen & Williams 2006, eq. 5.10), the std of a new
+        *observation* at ``x_i`` (it includes the fitted noise and jitter). ``loo_residuals() /
+        loo_std()`` should look like N(0, 1) draws when the model is well calibrated.
+        """
+        return self._loo_normalised()[1] * self.y_std_
+
+    # ---- batches
+
+    def believer(self, X_pending: np.ndarray) -> GaussianProcessSurrogate:
+        """A new model that treats the posterior mean at pending designs as observed.
+
+        This is the Kriging believer of Ginsbourger, Le Riche & Carraro (2010): designs already
+        submitted but not yet returned are "observed" at the current mean, so the mean elsewhere
+        stays put while the std near them collapses, and an infill criterion maximised on the new
+        model looks elsewhere. The kernel hyper-parameters, the jitter and the y normalisation are
+        reused unchanged (``optimizer=None``), so the refit is one Cholesky factorisation instead of
+        a likelihood optimisation.
+
+        Parameters
+        ----------
+        X_pending : array-like of shape (n_pending, n_dims)
+            Designs in flight. ``n_pending`` may be 0.
+
+        Returns
+        -------
+        model : GaussianProcessSurrogate
+            A new fitted model; ``self`` is unchanged. ``n_pending_`` counts the fantasised rows and
+            ``warnings_`` starts with the warnings of ``self``.
+        """
+        check_is_fitted(self, "model_")
+        X_pending = _check_X(X_pending, n_dims=self.X_.shape[1], name="X_pending")
+        if X_pending.shape[0] == 0:
+            return copy.deepcopy(self)
+        fantasy = self.predict(X_pending)
+        new = type(self)(**self.get_params())
+        new.warnings_ = list(self.warnings_)
+        new.y_mean_, new.y_std_ = self.y_mean_, self.y_std_
+        new.X_ = np.vstack([self.X_, X_pending])
+        new.y_ = np.concatenate([self.y_, fantasy])
+        new.model_, new.alpha_ = new._factorise(
+            self.kernel_, new.X_, (new.y_ - new.y_mean_) / new.y_std_, alpha=self.alpha_, optimise=False
+        )
+        new.kernel_ = new.model_.kernel_
+        new.n_pending_ = self.n_pending_ + X_pending.shape[0]
+        return new
+
+
+# --------------------------------------------------------------------------- quadratic response surface
+
+
+def _quadratic_powers(n_dims: int) -> np.ndarray:
+    """Exponents of the full quadratic model: intercept, linear, squares, two-factor products."""
+    eye = np.eye(n_dims, dtype=int)
+    rows = [np.zeros(n_dims, dtype=int), *eye, *(2 * eye)]
+    rows += [eye[i] + eye[j] for i in range(n_dims) for j in range(i + 1, n_dims)]
+    return np.array(rows, dtype=int).reshape(-1, n_dims)
+
+
+class QuadraticSurface(RegressorMixin, BaseEstimator):
+    """Full second-order polynomial response surface, fitted by least squares.
+
+    ``y ~ b0 + sum_i b_i z_i + sum_i b_ii z_i^2 + sum_{i<j} b_ij z_i z_j`` in coded units
+    ``z = 2 x - 1`` (centre of the cube at 0, faces at +-1), the model of Box & Wilson (1951).
+    Coding keeps the columns of the model matrix of similar size and nearly orthogonal on a
+    symmetric design, so the least-squares problem is well conditioned; it is solved by a thin QR
+    factorisation, which also gives the hat-matrix diagonal for PRESS (Allen 1974) without forming
+    an inverse.
+
+    It needs at least ``p = (k + 1)(k + 2) / 2`` designs for ``k`` parameters, and designs that
+    vary every parameter at three or more levels (a central composite design does).
+
+    Attributes
+    ----------
+    coef_ : ndarray of shape (n_terms,)
+        Coefficients in coded units, one per row of ``powers_``.
+    powers_ : ndarray of shape (n_terms, n_dims)
+        Exponents of each term: ``coef_[j]`` multiplies ``prod_i z_i ** powers_[j, i]``. Order:
+        intercept, linear terms, squares, two-factor products (i < j).
+    X_ : ndarray of shape (n_points, n_dims)
+    y_ : ndarray of shape (n_points,)
+    leverage_ : ndarray of shape (n_points,)
+        Hat-matrix diagonal ``h_ii``.
+    residual_variance_ : float
+        ``s^2 = SSE / (n - p)``; NaN when ``n == p``.
+    press_ : float
+        ``sum_i (e_i / (1 - h_ii))^2``; NaN when some ``h_ii == 1`` (always so when ``n == p``).
+    R_ : ndarray of shape (n_terms, n_terms)
+        Upper-triangular factor of the model matrix.
+    warnings_ : list of str
+        Fit-time warnings (no residual degrees of freedom, points with leverage 1).
+
+    References
+    ----------
+    .. [1] G. E. P. Box and K. B. Wilson, "On the experimental attainment of optimum conditions",
+       J. R. Stat. Soc. B 13(1):1-45, 1951.
+    .. [2] D. M. Allen, "The relationship between variable selection and data augmentation and a
+       method for prediction", Technometrics 16(1):125-127, 1974.
+    .. [3] R. H. Myers and D. C. Montgomery, *Response Surface Methodology*, 2nd ed., Wiley, 2002.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> X = np.random.default_rng(0).random((12, 2))
+    >>> rs = QuadraticSurface().fit(X, 1 + X[:, 0] ** 2 - X[:, 0] * X[:, 1])
+    >>> bool(rs.press_ < 1e-20)
+    True
+    """
+
+    name = "quadratic"
+    has_std = True
+
+    def __init__(self) -> None:
+        pass
+
+    @staticmethod
+    def _features(X: np.ndarray, powers: np.ndarray) -> np.ndarray:
+        z = 2.0 * X - 1.0
+        return np.prod(z[:, None, :] ** powers[None, :, :], axis=2)
+
+    def fit(self, X: np.ndarray, y: np.ndarray) -> QuadraticSurface:
+        """Fit by least squares.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_points, n_dims)
+            Designs in the unit cube; ``n_points >= (n_dims + 1)(n_dims + 2) / 2``.
+        y : array-like of shape (n_points,)
+
+        Returns
+        -------
+        self : QuadraticSurface
+
+        Raises
+        ------
+        ValueError
+            Too few designs, a design that cannot determine every term, or invalid inputs.
+        """
+        X, y = _check_Xy(X, y)
+        n, k = X.shape
+        powers = _quadratic_powers(k)
+        p = powers.shape[0]
+        if n < p:
+            raise ValueError(f"A quadratic response surface needs at least {p} designs for {_plural(k, 'parameter')}, got {n}.")
+        F = self._features(X, powers)
+        rank = np.linalg.matrix_rank(F)
+        if rank < p:
+            raise ValueError(
+                f"The designs determine only {rank} of the {p} quadratic terms; "
+                "vary every parameter at three or more levels (a central composite design does)."
+            )
+        Q, R = np.linalg.qr(F, mode="reduced")
+        self.warnings_: list[str] = []
+        self.powers_, self.R_ = powers, R
+        self.coef_ = solve_triangular(R, Q.T @ y)
+        self.X_, self.y_ = X, y
+        # Hat matrix H = Q Q^T, so h_ii is the squared norm of row i of Q (Allen 1974).
+        self.leverage_ = np.einsum("ij,ij->i", Q, Q)
+        self._residuals = y - F @ self.coef_
+        dof = n - p
+        if dof > 0:
+            self.residual_variance_ = float(self._residuals @ self._residuals / dof)
+        else:
+            self.residual_variance_ = math.nan
+            self.warnings_.append(
+                f"NoResidualDOF: {n} designs for {p} terms leave no residual degrees of freedom; the surface interpolates, "
+                "its standard error is reported as 0 and PRESS is undefined."
+            )
+        with np.errstate(divide="ignore", invalid="ignore"):
+            loo = self._residuals / (1.0 - self.leverage_)
+        stuck = 1.0 - self.leverage_ <= _LEVERAGE_TOL
+        loo[stuck] = np.nan
+        if stuck.any() and dof > 0:
+            self.warnings_.append(
+                f"FullLeverage: rows {np.flatnonzero(stuck)[:10].tolist()} alone determine a term, so their "
+                "leave-one-out residuals are undefined."
+            )
+        self._loo = loo
+        self.press_ = float(loo @ loo)
+        return self
+
+    def predict(self, X: np.ndarray, return_std: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+        """Fitted surface, and optionally its standard error.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_points, n_dims)
+        return_std : bool, default=False
+            Also return the standard error of the fitted mean, ``sqrt(s^2 f(x) (F^T F)^-1 f(x)^T)``
+            (Myers & Montgomery 2002). Like the GP's latent std, it excludes the scatter of a new
+            observation about the surface. It is all zeros when ``n == p`` (no residual variance).
+
+        Returns
+        -------
+        mean : ndarray of shape (n_points,)
+        std : ndarray of shape (n_points,)
+            Only returned when ``return_std`` is True.
+        """
+        check_is_fitted(self, "coef_")
+        X = _check_X(X, n_dims=self.X_.shape[1])
+        F = self._features(X, self.powers_)
+        mean = F @ self.coef_
+        if not return_std:
+            return mean
+        if not np.isfinite(self.residual_variance_):
+            return mean, np.zeros(X.shape[0])
+        # f (F^T F)^-1 f^T = ||R^-T f^T||^2 with F = QR.
+        w = solve_triangular(self.R_, F.T, trans="T")
+        return mean, np.sqrt(self.residual_variance_ * np.einsum("ij,ij->j", w, w))
+
+    def loo_residuals(self) -> np.ndarray:
+        """PRESS residuals ``e_i / (1 - h_ii)``, shape (n_points,).
+
+        These equal ``y_i - yhat_(i)`` from refitting without point ``i`` exactly, not
+        approximately (Allen 1974). NaN where ``h_ii == 1``: the point alone determines a term.
+        """
+        check_is_fitted(self, "coef_")
+        return self._loo.copy()
+
+
+# --------------------------------------------------------------------------- radial basis functions
+
+
+class RadialBasisSurrogate(RegressorMixin, BaseEstimator):
+    """Polyharmonic radial-basis-function interpolant with a linear polynomial tail.
+
+    ``s(x) = sum_j c_j phi(||x - x_j||) + b_0 + sum_i b_i x_i`` with ``sum_j c_j p(x_j) = 0`` for
+    each linear monomial ``p``, fitted with ``scipy.interpolate.RBFInterpolator`` (``degree=1``).
+    The kernels offered have no shape parameter, so there is nothing to tune and the model is
+    reproducible and fast; this makes it a useful fallback when a GP's likelihood is flat. It
+    interpolates the data when ``smoothing == 0``.
+
+    Parameters
+    ----------
+    kernel : {"thin_plate_spline", "cubic", "linear"}, default="thin_plate_spline"
+        ``r^2 log r``, ``r^3`` or ``-r``. Kernels that need a shape parameter or a quadratic tail are
+        not offered, because Rippa's leave-one-out below assumes this exact system.
+    smoothing : float, default=0.0
+        Added to the kernel diagonal; > 0 trades interpolation for a smoother fit (needed when
+        designs repeat).
+
+    Attributes
+    ----------
+    model_ : scipy.interpolate.RBFInterpolator
+    X_ : ndarray of shape (n_points, n_dims)
+    y_ : ndarray of shape (n_points,)
+    warnings_ : list of str
+        Always empty; present so that all surrogates can be logged alike.
+
+    Notes
+    -----
+    There is no statistical model behind an RBF interpolant, so there is no standard error:
+    ``predict(X, return_std=True)`` returns a std of NaN, and ``has_std`` is False so that infill
+    code can refuse this model for expected improvement.
+
+    References
+    ----------
+    .. [1] S. Rippa, "An algorithm for selecting a good value for the parameter c in radial basis
+       function interpolation", Adv. Comput. Math. 11:193-210, 1999.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> X = np.random.default_rng(0).random((20, 2))
+    >>> rbf = RadialBasisSurrogate().fit(X, X.sum(axis=1))
+    >>> bool(np.allclose(rbf.predict(X), X.sum(axis=1)))
+    True
+    """
+
+    name = "rbf"
+    has_std = False
+
+    def __init__(self, *, kernel: str = "thin_plate_spline", smoothing: float = 0.0) -> None:
+        self.kernel = kernel
+        self.smoothing = smoothing
+
+    def _check_params(self) -> None:
+        if self.kernel not in _RBF_KERNELS:
+            raise ValueError(f"kernel must be one of {sorted(_RBF_KERNELS)}, got {self.kernel!r}.")
+        if isinstance(self.smoothing, bool) or not isinstance(self.smoothing, numbers.Real) or not self.smoothing >= 0:
+            raise ValueError(f"smoothing must be a non-negative number, got {self.smoothing!r}.")
+
+    def fit(self, X: np.ndarray, y: np.ndarray) -> RadialBasisSurrogate:
+        """Solve the interpolation system.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_points, n_dims)
+            Distinct designs in the unit cube (unless ``smoothing > 0``); ``n_points >= n_dims + 1``
+            and not all on one hyperplane.
+        y : array-like of shape (n_points,)
+
+        Returns
+        -------
+        self : RadialBasisSurrogate
+
+        Raises
+        ------
+        ValueError
+            Too few designs, a singular system (duplicates, or designs on one hyperplane), or
+            invalid inputs.
+        """
+        self._check_params()
+        X, y = _check_Xy(X, y)
+        n, k = X.shape
+        if n < k + 1:
+            raise ValueError(f"A radial basis surrogate needs at least {k + 1} designs for {_plural(k, 'parameter')}, got {n}.")
+        try:
+            self.model_ = RBFInterpolator(X, y, kernel=self.kernel, smoothing=float(self.smoothing), degree=1)
+        except np.linalg.LinAlgError:
+            raise ValueError(
+                "The radial basis system is singular; remove duplicate designs, add designs off the common "
+                "hyperplane, or set smoothing > 0."
+            ) from None
+        self.X_, self.y_ = X, y
+        self.warnings_: list[str] = []
+        return self
+
+    def predict(self, X: np.ndarray, return_std: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+        """Interpolated values, and a NaN std when asked (an RBF has no standard error).
+
+        Parameters
+        ----------
+        X : array-like of shape (n_points, n_dims)
+        return_std : bool, default=False
+
+        Returns
+        -------
+        mean : ndarray of shape (n_points,)
+        std : ndarray of shape (n_points,)
+            All NaN. Only returned when ``return_std`` is True.
+        """
+        check_is_fitted(self, "model_")
+        X = _check_X(X, n_dims=self.X_.shape[1])
+        mean = self.model_(X)
+        if return_std:
+            return mean, np.full(X.shape[0], np.nan)
+        return mean
+
+    def loo_residuals(self) -> np.ndarray:
+        """Leave-one-out residuals by Rippa's formula, shape (n_points,).
+
+        With the saddle-point matrix ``M = [[K + lambda I, P], [P^T, 0]]`` and coefficients
+        ``c = M^-1 [y; 0]``, the residual of the interpolant built without point ``i`` is
+        ``e_i = c_i / (M^-1)_ii`` (Rippa 1999). ``M`` is rebuilt here from ``cdist`` and the kernel
+        formula because scipy does not expose it; one LU factorisation replaces n refits.
+
+        Raises
+        ------
+        ValueError
+            With fewer than ``n_dims + 2`` designs (a design left out would leave the linear tail
+            undetermined).
+        """
+        check_is_fitted(self, "model_")
+        n, k = self.X_.shape
+        if n < k + 2:
+            raise ValueError(f"Leave-one-out for a radial basis surrogate needs at least {k + 2} designs, got {n}.")
+        K = _RBF_KERNELS[self.kernel](cdist(self.X_, self.X_))
+        K[np.diag_indices(n)] += float(self.smoothing)
+        # Linear tail in coded units; any basis of the same polynomial space gives the same LOO.
+        P = np.hstack([np.ones((n, 1)), 2.0 * self.X_ - 1.0])
+        M = np.block([[K, P], [P.T, np.zeros((k + 1, k + 1))]])
+        lu = lu_factor(M, check_finite=False)
+        M_inv = lu_solve(lu, np.eye(n + k + 1), check_finite=False)
+        coef = M_inv[:n, :n] @ self.y_
+        return coef / np.diag(M_inv)[:n]
+
+
+# --------------------------------------------------------------------------- model choice
+
+Surrogate = GaussianProcessSurrogate | QuadraticSurface | RadialBasisSurrogate
+
+_FACTORIES = {
+    "gp": lambda random_state: GaussianProcessSurrogate(random_state=random_state),
+    "quadratic": lambda random_state: QuadraticSurface(),
+    "rbf": lambda random_state: RadialBasisSurrogate(),
+}
+
+
+def make_surrogate(name: str, random_state: int | np.random.RandomState | None = None) -> Surrogate:
+    """An unfitted surrogate with default settings, by its ``name``.
+
+    Parameters
+    ----------
+    name : {"gp", "quadratic", "rbf"}
+    random_state : int, RandomState or None, default=None
+        Used by the GP only (optimiser restarts).
+
+    Returns
+    -------
+    surrogate : GaussianProcessSurrogate, QuadraticSurface or RadialBasisSurrogate
+
+    Raises
+    ------
+    ValueError
+        For an unknown name.
+    """
+    try:
+        factory = _FACTORIES[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"Unknown surrogate {name!r}; choose one of {sorted(_FACTORIES)}.") from None
+    return factory(random_state)
+
+
+@dataclass(frozen=True)
+class ModelScore:
+    """Leave-one-out score of one candidate surrogate.
+
+    Attributes
+    ----------
+    name : str
+        The surrogate's ``name``.
+    loo_rmse : float
+        ``sqrt(mean((y_i - yhat_(i))^2))`` in the units of y; ``inf`` if the candidate was skipped.
+    loo_r2 : float
+        Predictive R^2, ``1 - PRESS / SS_T`` with ``SS_T = sum (y_i - mean(y))^2``; NaN if skipped
+        or if y is constant. Negative means worse than predicting the mean.
+    n_points : int
+        Number of designs scored.
+    note : str
+        Why the candidate was skipped, or a summary of fit warnings; empty otherwise.
+    """
+
+    name: str
+    loo_rmse: float
+    loo_r2: float
+    n_points: int
+    note: str = ""
+
+
+def choose_surrogate(
+    X: np.ndarray,
+    y: np.ndarray,
+    *,
+    candidates: Sequence[str] = ("gp", "quadratic", "rbf"),
+    random_state: int | np.random.RandomState | None = None,
+) -> tuple[Surrogate, list[ModelScore]]:
+    """Fit each candidate and keep the one with the smallest leave-one-out RMSE.
+
+    Leave-one-out is the fair yardstick here because the GP and the RBF interpolate their data, so
+    their training error says nothing. Each candidate's residuals come from its own closed form
+    (PRESS, Rippa, R&W eq. 5.12), so scoring costs about one fit per candidate. The GP's score is
+    slightly optimistic because its hyper-parameters were fitted on every point.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_points, n_dims)
+        Designs in the unit cube.
+    y : array-like of shape (n_points,)
+        Finite solver outputs.
+    candidates : sequence of {"gp", "quadratic", "rbf"}, default=("gp", "quadratic", "rbf")
+        Tried in this order; ties go to the earlier one.
+    random_state : int, RandomState or None, default=None
+        Passed to :func:`make_surrogate`.
+
+    Returns
+    -------
+    surrogate : GaussianProcessSurrogate, QuadraticSurface or RadialBasisSurrogate
+        The chosen model, fitted on all points.
+    scores : list of ModelScore
+        One per candidate, in the order given, skipped ones included (``loo_rmse = inf``, reason
+        in ``note``).
+
+    Raises
+    ------
+    ValueError
+        Invalid inputs, an unknown or empty candidate list, or no candidate that could be scored.
+    """
+    X, y = _check_Xy(X, y)
+    names = [candidates] if isinstance(candidates, str) else list(candidates)
+    if not names:
+        raise ValueError("candidates must name at least one surrogate.")
+    for name in names:
+        make_surrogate(name)  # fail fast on a typo, before any fitting
+    n = X.shape[0]
+    ss_tot = float(np.sum((y - y.mean()) ** 2))
+    scores: list[ModelScore] = []
+    best: Surrogate | None = None
+    best_rmse = math.inf
+    for name in names:
+        model = make_surrogate(name, random_state)
+        try:
+            model.fit(X, y)
+            residuals = model.loo_residuals()
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            scores.append(ModelScore(name, math.inf, math.nan, n, f"skipped: {exc}"))
+            continue
+        if not np.all(np.isfinite(residuals)):
+            scores.append(ModelScore(name, math.inf, math.nan, n, "skipped: leave-one-out residuals are undefined. " + " ".join(model.warnings_)))
+            continue
+        press = float(residuals @ residuals)
+        rmse = math.sqrt(press / n)
+        r2 = 1.0 - press / ss_tot if ss_tot > 0 else math.nan
+        note = f"{_plural(len(model.warnings_), 'fit warning')}; see warnings_" if model.warnings_ else ""
+        scores.append(ModelScore(name, rmse, r2, n, note))
+        if rmse < best_rmse:
+            best, best_rmse = model, rmse
+    if best is None:
+        reasons = " ".join(f"{s.name}: {s.note}" for s in scores)
+        raise ValueError(f"No candidate surrogate could be scored on {n} designs. {reasons}")
+    return best, scores
