@@ -33,6 +33,7 @@ from sortie.adapters.registry import build_adapter, check_solver  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
 from sortie.errors import CampaignError, SortieError  # noqa: E402
 from sortie.goal import Goal  # noqa: E402
+from sortie.infill import MIN_POINTS, History, InfillSettings, optimize_surface, propose_infill  # noqa: E402
 from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
 from sortie.plan import initial_designs  # noqa: E402
 
@@ -77,7 +78,9 @@ class _Conductor:
     conditions: list[dict[str, float]] = field(init=False)
     inbox: queue.Queue[Any] = field(default_factory=queue.Queue)
     in_flight: dict[int, tuple[CaseSpec, JobHandle | None]] = field(default_factory=dict)
+    waiting: deque[CaseRow] = field(default_factory=deque)
     stop_reason: str | None = None
+    infill_note: str | None = None
 
     def __post_init__(self) -> None:
         self.goal = self.config.goal.build()
@@ -97,18 +100,99 @@ class _Conductor:
         for case in self.ledger.cases(states=("submitting", "running")):
             # A previous run ended without recording this case's end; its local process is gone.
             self.ledger.requeue(case.id, why="lost", reason="the orchestrator stopped while the case ran")
-        waiting = deque(self.ledger.cases(states=("planned",)))
+        self.waiting = deque(self.ledger.cases(states=("planned",)))
         self.score_finished_designs()
         try:
-            while (waiting and self.stop_reason is None) or self.in_flight:
-                while waiting and self.stop_reason is None and len(self.in_flight) < self.config.slots:
-                    self.submit(waiting.popleft())
+            while True:
+                self.fill_slots()
+                if not self.in_flight:
+                    break
                 self.handle(self.inbox.get(timeout=3600))
         except BaseException:
             self.abandon_in_flight("interrupted", "the campaign was interrupted")
             raise
+        if self.stop_reason is None and len(self.ledger.designs()) < self.config.target_designs() and self.infill_note is None:
+            done = sum(d.status == "done" for d in self.ledger.designs())
+            self.stop_reason = (f"only {done} designs were scored, fewer than the {MIN_POINTS} a surrogate needs, so the "
+                                "plan cannot go on; see the failures with 'sortie status'")
         if self.stop_reason is not None:
             raise CampaignError(self.stop_reason)
+
+    def fill_slots(self) -> None:
+        """Start waiting cases while slots are free; when none wait, ask the plan for a new design."""
+        while self.stop_reason is None and len(self.in_flight) < self.config.slots:
+            if not self.waiting and not self.next_design():
+                return
+            self.submit(self.waiting.popleft())
+
+    # -- infill ----------------------------------------------------------------------------
+    def next_design(self) -> bool:
+        """Record the next design of the infill or classic stage if one is due now; True if one was."""
+        plan = self.config.plan
+        designs = self.ledger.designs()
+        if (plan.infill is None and plan.classic is None) or self.infill_note is not None:
+            return False
+        if len(designs) >= self.config.target_designs():
+            return False
+        if plan.classic is not None and any(d.status == "pending" for d in designs):
+            return False  # the one-shot surface is fitted to the whole initial experiment
+        history = self.history(designs)
+        seed = self.config.campaign.seed * 1000 + len(designs)
+        try:
+            if plan.classic is not None:
+                settings = InfillSettings(models=tuple(plan.classic.models))
+                proposal, stage = optimize_surface(history, settings, seed=seed), "confirmation"
+            else:
+                spec = plan.infill
+                assert spec is not None
+                settings = InfillSettings(tuple(spec.models), spec.candidates, spec.restarts, spec.min_distance,
+                                          spec.stop_below)
+                proposal, stage = propose_infill(history, settings, seed=seed), "infill"
+        except ValueError as err:  # e.g. every candidate within min_distance of an existing design
+            self.stop_reason = f"no further design can be proposed ({err})"
+            return False
+        if proposal is None:
+            return False
+        for target, scores in proposal.model_scores.items():
+            self.ledger.add_model_choice(self._target_name(target), proposal.chosen[target], int(history.usable().sum()),
+                                         [s.__dict__ for s in scores])
+        if proposal.converged:
+            self.infill_note = f"infill stopped: the best expected improvement {proposal.expected_improvement:.3g} fell below stop_below"
+            self.ledger.event("infill-stopped", self.infill_note)
+            return False
+        space = self.config.space()
+        values = space.to_values(proposal.x[None, :])[0]
+        unit = space.to_unit([values])[0]
+        prediction = proposal.prediction.as_dict()
+        if self.goal.sense == "maximize":
+            prediction["objective_mean"] = -prediction["objective_mean"]
+        prediction["constraints"] = [c.source for c in self.goal.constraints]
+        design_id = self.ledger.add_design(stage=stage, reason=proposal.reason() if stage == "infill" else
+                                           f"optimum of the fitted {proposal.chosen.get('objective')} surface (SLSQP)",
+                                           values=values, unit=unit, conditions=self.conditions, prediction=prediction)
+        self.waiting.extend(self.ledger.cases(design_id=design_id))
+        return True
+
+    def history(self, designs: list[Any]) -> History:
+        """The finished and pending designs as arrays for the surrogates (objective to minimise)."""
+        sign = 1.0 if self.goal.sense == "minimize" else -1.0
+        finished = [d for d in designs if d.status in ("done", "failed")]
+        pending = [d.unit for d in designs if d.status == "pending"]
+        n_dims = self.config.space().n_dims
+        sources = [c.source for c in self.goal.constraints]
+        return History(
+            X=np.array([d.unit for d in finished], dtype=float).reshape(len(finished), n_dims),
+            objective=np.array([sign * d.objective if d.objective is not None else np.nan for d in finished]),
+            margins=np.array([[(d.constraints or {}).get(s, np.nan) for s in sources] for d in finished],
+                             dtype=float).reshape(len(finished), len(sources)),
+            succeeded=np.array([d.status == "done" for d in finished], dtype=bool),
+            pending=np.array(pending, dtype=float).reshape(len(pending), n_dims),
+        )
+
+    def _target_name(self, target: str) -> str:
+        if target.startswith("constraint "):
+            return self.goal.constraints[int(target.split()[1])].source
+        return target
 
     def submit(self, row: CaseRow) -> None:
         values = self.ledger.design(row.design_id).values

@@ -92,9 +92,19 @@ def _print_result(directory: Path, cfg) -> None:
     if base and base["objective"] is not None:
         typer.echo(f"baseline (design {base['design']}): objective {base['objective']:.6g}")
     if best:
-        typer.echo(f"best design {best['design']}: objective {best['objective']:.6g} "
+        change = ""
+        if base and base["objective"]:
+            change = f", {100 * (best['objective'] - base['objective']) / abs(base['objective']):+.1f} % against the baseline"
+        typer.echo(f"best design {best['design']} ({best['stage']}): objective {best['objective']:.6g}{change} "
                    f"({'feasible' if best['feasible'] else 'no feasible design yet; this one violates least'})")
         typer.echo("  " + ", ".join(f"{k}={_fmt(v)}" for k, v in best["values"].items()))
+        pred = best.get("prediction")
+        if pred:
+            typer.echo(f"  predicted when proposed: objective {pred['objective_mean']:.6g} +/- {pred['objective_std']:.3g}; "
+                       f"the solver gave {best['objective']:.6g}")
+    for target, choice in s["models"].items():
+        scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" for c in choice["scores"] if c["loo_rmse"] is not None)
+        typer.echo(f"surrogate for {target}: {choice['chosen']} (leave-one-out RMSE: {scored})")
     typer.echo(f"results: ledger {ledger_path(directory)}, case folders {directory / 'cases'}")
     typer.echo(f"next: sortie status {directory}   |   sortie export {directory} --to designs.csv")
     typer.echo(CAUTION)
@@ -128,6 +138,11 @@ def status(
     typer.echo(describe(s))
     if s["failures_by_class"]:
         typer.echo("failures: " + ", ".join(f"{k} {v}" for k, v in sorted(s["failures_by_class"].items())))
+    typer.echo("designs by stage: " + ", ".join(f"{k} {v}" for k, v in s["stages"].items()))
+    for target, choice in s["models"].items():
+        scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" if c["loo_rmse"] is not None else f"{c['name']} skipped"
+                           for c in choice["scores"])
+        typer.echo(f"surrogate for {target}: {choice['chosen']} on {choice['n_points']} designs (leave-one-out RMSE: {scored})")
 
 
 @app.command()

@@ -179,10 +179,38 @@ class StageSpec(_Section):
         return self
 
 
+ModelName = Literal["gp", "quadratic", "rbf"]
+
+
+class InfillSpec(_Section):
+    """Adaptive infill after the initial experiment: expected improvement until the budget is spent."""
+
+    designs: int | None = Field(default=None, gt=0)
+    models: list[ModelName] = Field(default_factory=lambda: ["gp", "quadratic", "rbf"], min_length=1)
+    candidates: int = Field(default=2048, ge=64, le=1 << 20)
+    restarts: int = Field(default=8, ge=1, le=100)
+    min_distance: float = Field(default=0.01, gt=0, lt=0.5)
+    stop_below: float | None = Field(default=None, gt=0, lt=1)
+
+
+class ClassicSpec(_Section):
+    """One-shot path: fit a surface to the initial experiment, optimise it, confirm the optimum once."""
+
+    models: list[ModelName] = Field(default_factory=lambda: ["quadratic"], min_length=1)
+
+
 class PlanSection(_Section):
-    """The stages of the campaign; for now the initial designed experiment."""
+    """The stages of the campaign: the initial experiment, then infill or the classic one-shot path."""
 
     initial: StageSpec
+    infill: InfillSpec | None = None
+    classic: ClassicSpec | None = None
+
+    @model_validator(mode="after")
+    def _one_follow_up(self) -> PlanSection:
+        if self.infill is not None and self.classic is not None:
+            raise ValueError("give infill or classic after the initial experiment, not both")
+        return self
 
 
 class BudgetSection(_Section):
@@ -254,11 +282,28 @@ class CampaignConfig(_Section):
             from sortie.plan import initial_unit_points
 
             n_initial = len(initial_unit_points(initial, self.space(), self.campaign.seed))
-            if n_initial + 1 > self.budget.designs:
-                problems.append(f"budget.designs: {self.budget.designs} cannot hold the baseline plus the {n_initial} designs of plan.initial ({initial.method}); allowed: at least {n_initial + 1}")
+            needed = n_initial + 1 + (1 if self.plan.classic is not None else 0)
+            what = f"the baseline plus the {n_initial} designs of plan.initial ({initial.method})"
+            if self.plan.classic is not None:
+                what += " and the confirmation design of plan.classic"
+            if needed > self.budget.designs:
+                problems.append(f"budget.designs: {self.budget.designs} cannot hold {what}; allowed: at least {needed}")
         if problems:
             raise _Problems(problems)
         return self
+
+    def target_designs(self) -> int:
+        """How many designs the campaign records in all: the budget, or less if the plan says so."""
+        from sortie.plan import initial_unit_points
+
+        planned = 1 + len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+        if self.plan.classic is not None:
+            return min(self.budget.designs, planned + 1)
+        if self.plan.infill is None:
+            return planned
+        if self.plan.infill.designs is None:
+            return self.budget.designs
+        return min(self.budget.designs, planned + self.plan.infill.designs)
 
     def condition_list(self) -> list[dict[str, float]]:
         """The conditions as one mapping per operating point, in config order."""

@@ -10,6 +10,7 @@ connection, which WAL mode lets run beside the writer.
 from __future__ import annotations
 
 import json
+import math
 import os
 import sqlite3
 import time
@@ -105,6 +106,7 @@ class DesignRow:
     objective: float | None
     constraints: dict[str, float] | None
     feasible: bool | None
+    prediction: dict[str, Any] | None = None
 
 
 @dataclass(frozen=True)
@@ -227,13 +229,15 @@ class Ledger:
 
     # -- writes ----------------------------------------------------------------------------
     def add_design(self, *, stage: str, reason: str, values: Mapping[str, Any], unit: Sequence[float],
-                   conditions: Sequence[Mapping[str, float]]) -> int:
-        """Record a design and its planned cases (one per condition) together."""
+                   conditions: Sequence[Mapping[str, float]], prediction: Mapping[str, Any] | None = None) -> int:
+        """Record a design, its planned cases (one per condition) and any prediction, together."""
         now = time.time()
         with self.transaction() as c:
             cur = c.execute(
-                "INSERT INTO designs(stage, reason, values_json, unit_json, created_at) VALUES (?, ?, ?, ?, ?)",
-                (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]), now),
+                "INSERT INTO designs(stage, reason, values_json, unit_json, prediction_json, created_at)"
+                " VALUES (?, ?, ?, ?, ?, ?)",
+                (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]),
+                 json.dumps(dict(prediction)) if prediction is not None else None, now),
             )
             design_id = int(cur.lastrowid)
             c.executemany(
@@ -314,6 +318,18 @@ class Ledger:
                  None if feasible is None else int(feasible), time.time(), design_id),
             )
 
+    def add_model_choice(self, target: str, chosen: str, n_points: int, scores: Sequence[Mapping[str, Any]]) -> None:
+        """Record which surrogate was chosen for a target, with every candidate's LOO score."""
+        with self.transaction() as c:
+            c.execute("INSERT INTO models(at, target, chosen, n_points, scores_json) VALUES (?, ?, ?, ?, ?)",
+                      (time.time(), target, chosen, n_points, json.dumps([_finite(dict(s)) for s in scores])))
+
+    def model_choices(self) -> dict[str, dict[str, Any]]:
+        """The latest model choice per target."""
+        rows = self._conn.execute("SELECT * FROM models WHERE id IN (SELECT MAX(id) FROM models GROUP BY target) ORDER BY target")
+        return {r["target"]: {"chosen": r["chosen"], "n_points": r["n_points"], "scores": json.loads(r["scores_json"])}
+                for r in rows}
+
     def event(self, kind: str, message: str, data: Mapping[str, Any] | None = None) -> None:
         with self.transaction() as c:
             self._event(c, kind, message, data)
@@ -377,12 +393,18 @@ class Ledger:
         return problems
 
 
+def _finite(row: dict[str, Any]) -> dict[str, Any]:
+    """JSON has no inf or NaN: store them as null so every reader can parse the ledger."""
+    return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in row.items()}
+
+
 def _design(r: sqlite3.Row) -> DesignRow:
     return DesignRow(
         id=r["id"], stage=r["stage"], reason=r["reason"], values=json.loads(r["values_json"]),
         unit=json.loads(r["unit_json"]), status=r["status"], objective=r["objective"],
         constraints=json.loads(r["constraints_json"]) if r["constraints_json"] else None,
         feasible=None if r["feasible"] is None else bool(r["feasible"]),
+        prediction=json.loads(r["prediction_json"]) if r["prediction_json"] else None,
     )
 
 

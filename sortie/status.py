@@ -51,10 +51,12 @@ def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
         "goal": {"sense": config.goal.sense, "objective": config.goal.objective().source,
                  "constraints": list(config.goal.subject_to)},
         "best": None if best is None else {
-            "design": best.id, "objective": best.objective, "feasible": best.feasible,
-            "values": best.values, "constraints": best.constraints,
+            "design": best.id, "stage": best.stage, "objective": best.objective, "feasible": best.feasible,
+            "values": best.values, "constraints": best.constraints, "prediction": best.prediction,
         },
         "baseline": _baseline(designs),
+        "stages": {stage: sum(d.stage == stage for d in designs) for stage in dict.fromkeys(d.stage for d in designs)},
+        "models": ledger.model_choices(),
     }
 
 

@@ -73,9 +73,12 @@ def test_status_json_reports_the_counts(demo) -> None:
     result = sortie("status", str(directory), "--json", env=env, cwd=directory.parent)
     assert result.returncode == 0, result.stderr
     status = json.loads(result.stdout)
-    assert status["designs_total"] == status["designs_done"] == 17
+    config = yaml.safe_load(DEMO_CONFIG.read_text())
+    n_designs = config["budget"]["designs"]
+    assert status["designs_total"] == status["designs_done"] == n_designs
     assert status["designs_failed"] == status["cases_failed"] == status["cases_running"] == 0
-    assert status["cases_done"] == 68
+    assert status["cases_done"] == n_designs * len(config["conditions"]["mach"])
+    assert set(status["models"]) == {"objective", "drag <= baseline.drag"}
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
         feasible = [d for d in ledger.designs() if d.feasible]
     best = min(feasible, key=lambda d: d.objective)
