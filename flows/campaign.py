@@ -81,6 +81,7 @@ class _Conductor:
     waiting: deque[CaseRow] = field(default_factory=deque)
     stop_reason: str | None = None
     infill_note: str | None = None
+    kernels: dict[str, Any] | None = None
 
     def __post_init__(self) -> None:
         self.goal = self.config.goal.build()
@@ -147,12 +148,13 @@ class _Conductor:
                 assert spec is not None
                 settings = InfillSettings(tuple(spec.models), spec.candidates, spec.restarts, spec.min_distance,
                                           spec.stop_below)
-                proposal, stage = propose_infill(history, settings, seed=seed), "infill"
+                proposal, stage = propose_infill(history, settings, seed=seed, warm=self.kernels), "infill"
         except ValueError as err:  # e.g. every candidate within min_distance of an existing design
             self.stop_reason = f"no further design can be proposed ({err})"
             return False
         if proposal is None:
             return False
+        self.kernels = proposal.kernels
         for target, scores in proposal.model_scores.items():
             self.ledger.add_model_choice(self._target_name(target), proposal.chosen[target], int(history.usable().sum()),
                                          [s.__dict__ for s in scores])

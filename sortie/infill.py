@@ -31,7 +31,7 @@ References
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -97,6 +97,8 @@ class InfillSettings:
     restarts: int = 8
     min_distance: float = 0.01
     stop_below: float | None = None
+    full_fit_every: int = 5
+    std_cycle: tuple[float, ...] = (1.0, 0.3, 0.05)
 
 
 @dataclass(frozen=True)
@@ -126,6 +128,7 @@ class InfillProposal:
     model_scores: dict[str, list[ModelScore]] = field(default_factory=dict)
     chosen: dict[str, str] = field(default_factory=dict)
     converged: bool = False
+    kernels: dict[str, Any] = field(default_factory=dict)
 
     def reason(self) -> str:
         if self.incumbent is None:
@@ -142,40 +145,54 @@ class _Models:
     success: SuccessModel
     scores: dict[str, list[ModelScore]]
     chosen: dict[str, str]
+    kernels: dict[str, Any]
 
     def predict(self, X: np.ndarray) -> tuple[np.ndarray, np.ndarray, list[tuple[np.ndarray, np.ndarray]]]:
         mean, std = self.objective.predict(X, return_std=True)
         return mean, std, [m.predict(X, return_std=True) for m in self.margins]
 
 
-def _fit_target(X: np.ndarray, y: np.ndarray, models: Sequence[str], seed: int) -> tuple[Surrogate, list[ModelScore]]:
+def _fit_target(X: np.ndarray, y: np.ndarray, models: Sequence[str], seed: int,
+                gp_options: dict[str, Any]) -> tuple[Surrogate, list[ModelScore]]:
     """The best model by LOO among those with a standard deviation (EI needs one)."""
     with_std = [m for m in models if m in ("gp", "quadratic")] or ["gp"]
-    best, scores = choose_surrogate(X, y, candidates=list(dict.fromkeys([*with_std, *models])), random_state=seed)
+    options = {"gp": gp_options}
+    best, scores = choose_surrogate(X, y, candidates=list(dict.fromkeys([*with_std, *models])), random_state=seed,
+                                    options=options)
     if not best.has_std:
         usable = [s for s in scores if s.name in with_std and np.isfinite(s.loo_rmse)]
         name = min(usable, key=lambda s: s.loo_rmse).name if usable else "gp"
-        best, _ = choose_surrogate(X, y, candidates=[name], random_state=seed)
+        best, _ = choose_surrogate(X, y, candidates=[name], random_state=seed, options=options)
     return best, scores
 
 
-def fit_models(history: History, settings: InfillSettings, seed: int) -> _Models | None:
-    """Fit the objective, margin and success models; None when too few designs have succeeded."""
+def fit_models(history: History, settings: InfillSettings, seed: int,
+               warm: Mapping[str, Any] | None = None) -> _Models | None:
+    """Fit the objective, margin and success models; None when too few designs have succeeded.
+
+    Every ``full_fit_every``-th design (counted by finished designs) the GP hyper-parameters get a
+    full search with restarts; in between each GP starts from the previous fit's kernel
+    (``warm``) without restarts, which costs a fraction of a full search.
+    """
     ok = history.usable()
     if ok.sum() < MIN_POINTS:
         return None
     X = history.X[ok]
-    objective, obj_scores = _fit_target(X, history.objective[ok], settings.models, seed)
-    scores = {"objective": obj_scores}
-    chosen = {"objective": objective.name}
-    margins = []
-    for j in range(history.margins.shape[1]):
-        model, s = _fit_target(X, history.margins[ok, j], settings.models, seed + 1 + j)
-        margins.append(model)
-        scores[f"constraint {j}"] = s
-        chosen[f"constraint {j}"] = model.name
+    full = warm is None or len(history.X) % max(settings.full_fit_every, 1) == 0
+    targets = ["objective"] + [f"constraint {j}" for j in range(history.margins.shape[1])]
+    ys = [history.objective[ok]] + [history.margins[ok, j] for j in range(history.margins.shape[1])]
+    fitted, scores, chosen, kernels = [], {}, {}, {}
+    for i, (target, y) in enumerate(zip(targets, ys, strict=True)):
+        gp_options = {} if full or target not in (warm or {}) else {"warm_kernel": warm[target], "n_restarts": 0}
+        model, s = _fit_target(X, y, settings.models, seed + i, gp_options)
+        fitted.append(model)
+        scores[target], chosen[target] = s, model.name
+        if isinstance(model, GaussianProcessSurrogate) and model.kernel_ is not None:
+            kernels[target] = model.kernel_
+        elif warm and target in warm:
+            kernels[target] = warm[target]
     success = SuccessModel(random_state=seed).fit(history.X, history.succeeded)
-    return _Models(objective, margins, success, scores, chosen)
+    return _Models(fitted[0], fitted[1:], success, scores, chosen, kernels)
 
 
 def _believe(model: Surrogate, pending: np.ndarray) -> Surrogate:
@@ -184,14 +201,15 @@ def _believe(model: Surrogate, pending: np.ndarray) -> Surrogate:
     return model
 
 
-def propose_infill(history: History, settings: InfillSettings, *, seed: int) -> InfillProposal | None:
+def propose_infill(history: History, settings: InfillSettings, *, seed: int,
+                   warm: Mapping[str, Any] | None = None) -> InfillProposal | None:
     """The next design by constrained, failure-aware expected improvement; None if it cannot be fitted yet.
 
     BLAS is limited to one thread while fitting: on small machines the solver cases and the
     orchestrator share the cores, and multi-threaded BLAS on n < 1000 matrices only adds contention.
     """
     with threadpool_limits(limits=1, user_api="blas"):
-        models = fit_models(history, settings, seed)
+        models = fit_models(history, settings, seed, warm)
         if models is None:
             return None
         ok = history.usable()
@@ -201,6 +219,9 @@ def propose_infill(history: History, settings: InfillSettings, *, seed: int) -> 
         if history.margins.size:
             feasible &= (np.nan_to_num(history.margins, nan=np.inf) <= 0).all(axis=1)
         incumbent = float(history.objective[feasible].min()) if feasible.any() else None
+        # A std factor below 1 on some steps sharpens EI towards the predicted minimum: alternating
+        # exploratory and exploitative steps, in the spirit of weighted EI (Sobester et al. 2005).
+        sharpen = settings.std_cycle[(len(history.X) + len(history.pending)) % len(settings.std_cycle)]
 
         def log_score(X: np.ndarray) -> np.ndarray:
             total = models.success.log_predict_proba(X)
@@ -209,7 +230,7 @@ def propose_infill(history: History, settings: InfillSettings, *, seed: int) -> 
                 total = total + log_probability_of_feasibility(mu, sd)
             if incumbent is not None:
                 mu, sd = objective.predict(X, return_std=True)
-                total = total + log_expected_improvement(mu, sd, incumbent)
+                total = total + log_expected_improvement(mu, sharpen * sd, incumbent)
             return total
 
         exclude = np.vstack([history.X, history.pending]) if len(history.pending) else history.X
@@ -230,7 +251,7 @@ def propose_infill(history: History, settings: InfillSettings, *, seed: int) -> 
     converged = settings.stop_below is not None and incumbent is not None and ei < settings.stop_below * scale
     return InfillProposal(found.x, ei, pf, ps, incumbent,
                           Prediction(float(mu[0]), float(sd[0]), tuple(m_means), tuple(m_stds)),
-                          models.scores, models.chosen, converged)
+                          models.scores, models.chosen, converged, models.kernels)
 
 
 def optimize_surface(history: History, settings: InfillSettings, *, seed: int,

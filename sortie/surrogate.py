@@ -47,14 +47,15 @@ import copy
 import math
 import numbers
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from scipy.interpolate import RBFInterpolator
 from scipy.linalg import cho_solve, lu_factor, lu_solve, solve_triangular
 from scipy.spatial.distance import cdist
-from sklearn.base import BaseEstimator, RegressorMixin
+from sklearn.base import BaseEstimator, RegressorMixin, clone
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Kernel, Matern, WhiteKernel
@@ -184,6 +185,10 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         resolve the variation; above ~10 the input is effectively inactive.
     random_state : int, RandomState or None, default=None
         Seeds the optimiser restarts; the same value gives the same fit.
+    warm_kernel : Kernel or None, default=None
+        A previous fit's ``kernel_`` to start the optimiser from (with ``n_restarts=0`` a refit
+        after one more design then costs a few likelihood evaluations instead of a search).
+        Ignored when its number of hyper-parameters does not match the data.
 
     Attributes
     ----------
@@ -243,7 +248,9 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         noise: bool = True,
         length_scale_bounds: tuple[float, float] = (1e-2, 1e2),
         random_state: int | np.random.RandomState | None = None,
+        warm_kernel: Kernel | None = None,
     ) -> None:
+        self.warm_kernel = warm_kernel
         self.n_restarts = n_restarts
         self.noise = noise
         self.length_scale_bounds = length_scale_bounds
@@ -265,6 +272,10 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         return low, high
 
     def _initial_kernel(self, n_dims: int, bounds: tuple[float, float]) -> Kernel:
+        # A previous fit's kernel (same inputs) is the best start: the optimiser then needs a few
+        # steps instead of a search, which is what keeps refits cheap during infill.
+        if self.warm_kernel is not None and self.warm_kernel.n_dims == 1 + n_dims + int(self.noise):
+            return clone(self.warm_kernel)
         # gp.md section 1: amplitude bounds suit a unit-variance (normalised) prior; 0.2 is a
         # length-scale that n ~ 10 d points can resolve, moved inside the bounds if needed.
         start = float(np.clip(0.2, *bounds))
@@ -485,7 +496,7 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         if X_pending.shape[0] == 0:
             return copy.deepcopy(self)
         fantasy = self.predict(X_pending)
-        new = type(self)(**self.get_params())
+        new = type(self)(**self.get_params(deep=False))
         new.warnings_ = list(self.warnings_)
         new.y_mean_, new.y_std_ = self.y_mean_, self.y_std_
         new.X_ = np.vstack([self.X_, X_pending])
@@ -886,6 +897,7 @@ def choose_surrogate(
     *,
     candidates: Sequence[str] = ("gp", "quadratic", "rbf"),
     random_state: int | np.random.RandomState | None = None,
+    options: Mapping[str, Mapping[str, Any]] | None = None,
 ) -> tuple[Surrogate, list[ModelScore]]:
     """Fit each candidate and keep the one with the smallest leave-one-out RMSE.
 
@@ -904,6 +916,8 @@ def choose_surrogate(
         Tried in this order; ties go to the earlier one.
     random_state : int, RandomState or None, default=None
         Passed to :func:`make_surrogate`.
+    options : mapping of name to parameters, optional
+        Extra constructor parameters per candidate (``set_params``), e.g. a GP's warm kernel.
 
     Returns
     -------
@@ -931,6 +945,8 @@ def choose_surrogate(
     best_rmse = math.inf
     for name in names:
         model = make_surrogate(name, random_state)
+        if options and name in options:
+            model.set_params(**options[name])
         try:
             model.fit(X, y)
             residuals = model.loo_residuals()

@@ -1,0 +1,108 @@
+"""The infill decisions as pure functions: what they propose, and why."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from sortie.infill import History, InfillSettings, fit_models, optimize_surface, propose_infill
+
+FAST = InfillSettings(models=("gp",), candidates=256, restarts=3)
+
+
+def _quadratic(X: np.ndarray) -> np.ndarray:
+    return np.sum((X - np.array([0.3, 0.7])) ** 2, axis=1)
+
+
+def _history(X: np.ndarray, y: np.ndarray, margins: np.ndarray | None = None, succeeded: np.ndarray | None = None,
+             pending: np.ndarray | None = None) -> History:
+    n, d = X.shape
+    return History(X, y, np.zeros((n, 0)) if margins is None else margins,
+                   np.ones(n, bool) if succeeded is None else succeeded,
+                   np.zeros((0, d)) if pending is None else pending)
+
+
+def test_too_few_successful_designs_give_no_proposal() -> None:
+    X = np.array([[0.1, 0.1], [0.9, 0.9], [0.5, 0.5]])
+    history = _history(X, np.array([1.0, 2.0, np.nan]), succeeded=np.array([True, True, False]))
+    assert propose_infill(history, FAST, seed=0) is None
+
+
+def test_proposal_moves_towards_the_minimum_of_a_bowl() -> None:
+    rng = np.random.default_rng(1)
+    X = rng.random((12, 2))
+    proposal = propose_infill(_history(X, _quadratic(X)), InfillSettings(models=("gp",), std_cycle=(0.05,)), seed=3)
+    assert proposal is not None
+    assert np.linalg.norm(proposal.x - [0.3, 0.7]) < np.min(np.linalg.norm(X - [0.3, 0.7], axis=1))
+    assert proposal.incumbent == pytest.approx(_quadratic(X).min())
+    assert proposal.expected_improvement > 0 and proposal.chosen == {"objective": "gp"}
+
+
+def test_pending_designs_push_the_next_proposal_away() -> None:
+    rng = np.random.default_rng(2)
+    X = rng.random((10, 2))
+    alone = propose_infill(_history(X, _quadratic(X)), FAST, seed=5)
+    assert alone is not None
+    with_pending = propose_infill(_history(X, _quadratic(X), pending=alone.x[None, :]), FAST, seed=5)
+    assert with_pending is not None
+    assert np.linalg.norm(with_pending.x - alone.x) >= FAST.min_distance
+
+
+def test_infeasible_region_is_avoided_by_the_constraint_model() -> None:
+    rng = np.random.default_rng(4)
+    X = rng.random((20, 2))
+    y = _quadratic(X)
+    margins = (0.5 - X[:, 0])[:, None]  # feasible only where x0 >= 0.5; the bowl's minimum is at x0 = 0.3
+    proposal = propose_infill(_history(X, y, margins=margins), FAST, seed=0)
+    assert proposal is not None
+    assert proposal.x[0] >= 0.45
+    assert proposal.probability_feasible > 0.5
+    assert len(proposal.prediction.margins_mean) == 1
+
+
+def test_without_a_feasible_design_the_search_looks_for_feasibility() -> None:
+    rng = np.random.default_rng(6)
+    X = rng.random((12, 2)) * 0.5  # every design in the infeasible lower-left quarter
+    margins = (1.2 - X.sum(axis=1))[:, None]  # feasible only where x0 + x1 >= 1.2
+    proposal = propose_infill(_history(X, _quadratic(X), margins=margins), FAST, seed=0)
+    assert proposal is not None and proposal.incumbent is None
+    assert "feasibility" in proposal.reason()
+    assert proposal.x.sum() > X.sum(axis=1).max()  # it steps out towards the feasible side
+
+
+def test_warm_kernels_are_returned_and_reused() -> None:
+    rng = np.random.default_rng(7)
+    X = rng.random((10, 2))  # 11 designs after one more: not a full-search step (every 5th)
+    first = propose_infill(_history(X, _quadratic(X)), FAST, seed=1)
+    assert first is not None and set(first.kernels) == {"objective"}
+    X2 = np.vstack([X, first.x])
+    models = fit_models(_history(X2, _quadratic(X2)), FAST, seed=2, warm=first.kernels)
+    assert models is not None
+    assert models.objective.get_params()["n_restarts"] == 0  # warm refit, no restart search
+
+
+def test_stop_rule_fires_when_improvement_is_negligible() -> None:
+    X = np.array([[i / 6, j / 6] for i in range(7) for j in range(7)])
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=2, stop_below=0.5)
+    proposal = propose_infill(_history(X, _quadratic(X)), settings, seed=0)
+    assert proposal is not None and proposal.converged
+
+
+def test_classic_surface_optimum_of_an_exact_quadratic_is_its_minimum() -> None:
+    # a face-centred 3x3 grid fits the quadratic exactly, so SLSQP lands on its minimiser
+    X = np.array([[i / 2, j / 2] for i in range(3) for j in range(3)])
+    proposal = optimize_surface(_history(X, _quadratic(X)), InfillSettings(models=("quadratic",)), seed=0)
+    assert proposal is not None and proposal.chosen == {"objective": "quadratic"}
+    assert proposal.x == pytest.approx([0.3, 0.7], abs=1e-4)
+    assert proposal.prediction.objective_mean == pytest.approx(0.0, abs=1e-8)
+
+
+def test_classic_optimum_respects_a_predicted_constraint() -> None:
+    X = np.array([[i / 2, j / 2] for i in range(3) for j in range(3)])
+    margins = (0.5 - X[:, 0])[:, None]  # x0 >= 0.5 required; the bowl would rather sit at 0.3
+    proposal = optimize_surface(_history(X, _quadratic(X), margins=margins), InfillSettings(models=("quadratic",)), seed=0)
+    assert proposal is not None
+    assert proposal.x[0] == pytest.approx(0.5, abs=1e-4) and proposal.x[1] == pytest.approx(0.7, abs=1e-3)
+    assert math.isclose(proposal.prediction.margins_mean[0], 0.0, abs_tol=1e-6)
