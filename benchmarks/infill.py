@@ -71,7 +71,7 @@ class Run:
 
 
 def _settings() -> InfillSettings:
-    return InfillSettings(min_distance=1e-3)  # the tool default 0.01 stops short of 1 % on Branin
+    return InfillSettings()
 
 
 def run_strategy(problem: Problem, strategy: str, seed: int) -> Run:

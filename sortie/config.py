@@ -189,7 +189,7 @@ class InfillSpec(_Section):
     models: list[ModelName] = Field(default_factory=lambda: ["gp", "quadratic", "rbf"], min_length=1)
     candidates: int = Field(default=2048, ge=64, le=1 << 20)
     restarts: int = Field(default=8, ge=1, le=100)
-    min_distance: float = Field(default=0.01, gt=0, lt=0.5)
+    min_distance: float = Field(default=0.001, gt=0, lt=0.5)
     stop_below: float | None = Field(default=None, gt=0, lt=1)
 
 

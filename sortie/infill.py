@@ -95,7 +95,7 @@ class InfillSettings:
     models: tuple[str, ...] = ("gp", "quadratic", "rbf")
     candidates: int = 2048
     restarts: int = 8
-    min_distance: float = 0.01
+    min_distance: float = 0.001
     stop_below: float | None = None
     full_fit_every: int = 5
     std_cycle: tuple[float, ...] = (1.0, 0.3, 0.05)
