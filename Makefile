@@ -2,7 +2,7 @@
 PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin
-DEMO_DIR ?= campaigns/sled-aftbody
+DEMO_DIR ?= campaigns/demo-sled-aftbody
 
 .PHONY: demo test test-fast lint bench clean
 
@@ -17,6 +17,7 @@ $(VENV)/.installed: pyproject.toml | $(BIN)/python
 
 demo: $(VENV)/.installed
 	$(BIN)/sortie check configs/sled-aftbody.yaml
+	rm -rf $(DEMO_DIR)  # the demo always starts afresh
 	$(BIN)/sortie run configs/sled-aftbody.yaml --dir $(DEMO_DIR)
 
 test: $(VENV)/.installed

@@ -29,7 +29,7 @@ def describe(s: dict[str, Any]) -> str:
     if best is not None:
         shown = f"design {best['design']} objective {best['objective']:.6g} ({'feasible' if best['feasible'] else 'infeasible'})"
     return (f"cases {s['cases_done']}/{s['cases_total']} done, {s['cases_running']} running, {s['cases_failed']} failed"
-            f" | designs {s['designs_done'] + s['designs_failed']}/{s['budget_designs']} | best: {shown}")
+            f" | designs {s['designs_done'] + s['designs_failed']}/{s['designs_planned']} | best: {shown}")
 
 
 class LedgerWatcher:
@@ -43,6 +43,9 @@ class LedgerWatcher:
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name="sortie-progress", daemon=True)
         self.tty = bool(getattr(stream, "isatty", lambda: False)())
+        # the plan's full size, so the bars do not grow as infill adds designs
+        self.target_designs = config.target_designs()
+        self.target_cases = self.target_designs * len(config.condition_list())
 
     def __enter__(self) -> LedgerWatcher:
         self._thread.start()
@@ -85,14 +88,14 @@ class LedgerWatcher:
                    TextColumn("{task.fields[detail]}"))
         with Progress(*columns, console=console, transient=False) as bar:
             cases = bar.add_task("cases", total=None, detail="")
-            designs = bar.add_task("designs", total=self.config.budget.designs, detail="")
+            designs = bar.add_task("designs", total=self.target_designs, detail="")
             while True:
                 stopping = self._stop.is_set()
                 s = self._read()
                 if s is not None:
                     best = s["best"]
                     best_text = "" if best is None else f"best design {best['design']}: {best['objective']:.6g}" + ("" if best["feasible"] else " (infeasible)")
-                    bar.update(cases, total=max(s["cases_total"], 1), completed=s["cases_done"] + s["cases_failed"],
+                    bar.update(cases, total=max(s["cases_total"], self.target_cases), completed=s["cases_done"] + s["cases_failed"],
                                detail=f"{s['cases_running']} running, {s['cases_failed']} failed")
                     bar.update(designs, completed=s["designs_done"] + s["designs_failed"], detail=best_text)
                 if stopping:
