@@ -108,7 +108,12 @@ class _Conductor:
                 self.fill_slots()
                 if not self.in_flight:
                     break
-                self.handle(self.inbox.get(timeout=3600))
+                try:
+                    # a short timeout keeps the main thread responsive to Ctrl-C and SIGTERM
+                    message = self.inbox.get(timeout=1.0)
+                except queue.Empty:
+                    continue
+                self.handle(message)
         except BaseException:
             self.abandon_in_flight("interrupted", "the campaign was interrupted")
             raise

@@ -1,6 +1,6 @@
 """Properties of the acquisition functions, the success model and the search in sortie.acquisition.
 
-Outside numbers come from /work/shared/CHECKS.md §3; each check names its source beside it. The
+Outside numbers come from the shared CHECKS.md (../shared/CHECKS.md beside the project) §3; each check names its source beside it. The
 deep-tail reference for log EI is the asymptotic series of the Mills ratio, checked here against
 the closed form where both are representable (no multi-precision library is needed).
 """

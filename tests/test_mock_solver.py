@@ -2,7 +2,7 @@
 physics, and the program's behaviour as a real subprocess (output, failures, logs, children).
 
 Every comparison with an outside number names its source beside the check; "CHECKS.md §7"
-refers to /work/shared/CHECKS.md, which records where each value comes from.
+refers to the shared CHECKS.md (../shared/CHECKS.md beside the project), which records where each value comes from.
 """
 
 from __future__ import annotations

@@ -1,6 +1,6 @@
 """Properties of the initial-design samplers in sortie.sampling.
 
-Outside numbers come from /work/shared/CHECKS.md; each check names its source beside it.
+Outside numbers come from the shared CHECKS.md (../shared/CHECKS.md beside the project); each check names its source beside it.
 """
 
 from __future__ import annotations
