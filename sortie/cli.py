@@ -8,6 +8,7 @@ the traceback instead. Prefect is imported only inside ``run``, so ``check``, ``
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import sys
@@ -66,13 +67,20 @@ def run(
     directory = directory or Path("campaigns") / cfg.campaign.name
     prepared = campaign.prepare(config, cfg, directory)
     typer.echo(f"{'continuing' if prepared.existed else 'starting'} campaign {cfg.campaign.name!r} in {directory}")
-    if not os.environ.get("PREFECT_API_URL"):
-        typer.echo("starting Prefect's temporary local API (about 10 s; set PREFECT_API_URL to use a running server)")
-    from sortie.flows.campaign import run_campaign
+    from sortie.flows.runtime import configure_prefect
+    from sortie.flows.server import local_api
 
+    configure_prefect()
+    server = contextlib.nullcontext()
+    if not os.environ.get("PREFECT_API_URL"):
+        typer.echo("starting a local Prefect API for this run (about 10 s; set PREFECT_API_URL to use a running server)")
+        server = local_api(directory)
     try:
-        with LedgerWatcher(directory, cfg, stream=sys.stdout):
-            run_campaign(directory)
+        with server:
+            from sortie.flows.campaign import run_campaign
+
+            with LedgerWatcher(directory, cfg, stream=sys.stdout):
+                run_campaign(directory)
     except KeyboardInterrupt:
         typer.echo(f"interrupted; finished cases are kept. Continue with: sortie run {config} --dir {directory}", err=True)
         raise typer.Exit(130) from None
@@ -181,7 +189,9 @@ def main() -> None:
     if debug:
         sys.argv.remove("--debug")
     try:
-        app(standalone_mode=False)
+        code = app(standalone_mode=False)  # returns the exit code of typer.Exit in this mode
+        if isinstance(code, int) and code:
+            sys.exit(code)
     except SortieError as err:
         if debug:
             raise

@@ -123,3 +123,44 @@ def test_run_into_an_unwritable_folder_says_so_in_one_line(tmp_path: Path) -> No
     assert result.returncode == 2
     assert "cannot be written" in result.stderr and "Traceback" not in result.stderr
     assert not (blocker / "camp").exists()
+
+
+def test_ctrl_c_stops_cleanly_and_the_same_command_finishes_the_campaign(tmp_path: Path) -> None:
+    import signal
+    import time
+
+    env = {**os.environ, "PREFECT_HOME": str(tmp_path / "prefect-home")}
+    env.pop("PREFECT_API_URL", None)
+    directory = tmp_path / "camp"
+    # own session, like a terminal's foreground job: Ctrl-C goes to the whole group
+    proc = subprocess.Popen([sys.executable, "-m", "sortie.cli", "run", str(DEMO_CONFIG), "--dir", str(directory)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=tmp_path,
+                            start_new_session=True)
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline:
+        if (directory / "ledger.sqlite").exists():
+            with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+                if sum(c.state == "done" for c in ledger.cases()) >= 20:
+                    break
+        time.sleep(0.5)
+    os.killpg(proc.pid, signal.SIGINT)
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert f"Continue with: sortie run {DEMO_CONFIG} --dir {directory}" in err
+    assert "Traceback" not in out + err
+    server_pid = int((directory / "prefect-server.pid").read_text())
+    cmdline = Path(f"/proc/{server_pid}/cmdline")
+    assert not (cmdline.exists() and b"create_app" in cmdline.read_bytes()), "the run's Prefect API server is gone"
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        assert ledger.check_consistency() == []
+        done_before = {c.id for c in ledger.cases(states=("done",))}
+
+    result = sortie("run", str(DEMO_CONFIG), "--dir", str(directory), env=env, cwd=tmp_path)
+    assert result.returncode == 0, result.stderr
+    config = yaml.safe_load(DEMO_CONFIG.read_text())
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        assert ledger.check_consistency() == []
+        cases = ledger.cases()
+        assert len(ledger.designs()) == config["budget"]["designs"]
+    assert all(c.state == "done" for c in cases)
+    assert all(c.attempts == 1 for c in cases if c.id in done_before), "finished cases are never run again"

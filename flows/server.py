@@ -1,0 +1,108 @@
+"""A Prefect API server owned by one campaign run: in its own session, dying with the run.
+
+Prefect's temporary server is a child in the orchestrator's process group, so a terminal Ctrl-C
+kills it at once and leaves the flow hanging on connection errors, and a ``kill -9`` of the
+orchestrator leaves it running forever. Starting the same server ourselves fixes both: it runs
+in its own session (a terminal's Ctrl-C does not reach it), the kernel sends it SIGTERM when the
+orchestrator dies for any reason (``PR_SET_PDEATHSIG``), and its log goes to the campaign folder
+instead of the terminal.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import ctypes
+import importlib.util
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from collections.abc import Iterator
+from pathlib import Path
+
+from sortie.errors import CampaignError
+
+LOG_NAME = "prefect-server.log"
+PID_NAME = "prefect-server.pid"
+_PR_SET_PDEATHSIG = 1
+
+
+def _die_with_parent() -> None:
+    """Runs in the child between fork and exec: ask the kernel for SIGTERM when the parent dies."""
+    libc = ctypes.CDLL(None, use_errno=True)
+    libc.prctl(_PR_SET_PDEATHSIG, signal.SIGTERM, 0, 0, 0)
+
+
+def _free_port() -> int:
+    with contextlib.closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+@contextlib.contextmanager
+def local_api(log_dir: Path, *, timeout_s: float = 120.0) -> Iterator[str]:
+    """Start a private Prefect API on a free loopback port; yields its URL, stops it on exit.
+
+    Sets ``PREFECT_API_URL`` for this process while it runs, so it must be entered before
+    ``prefect`` is imported.
+    """
+    spec = importlib.util.find_spec("prefect")
+    if spec is None or spec.origin is None:
+        raise CampaignError("Prefect is not installed in this environment; reinstall sortie (pip install -e .)")
+    app_dir = str(Path(spec.origin).parent.parent)
+    port = _free_port()
+    url = f"http://127.0.0.1:{port}/api"
+    log_path = Path(log_dir) / LOG_NAME
+    env = {**os.environ, "PREFECT_UI_ENABLED": "0", "PREFECT_SERVER_UI_ENABLED": "false",
+           "PREFECT__SERVER_EPHEMERAL": "1", "PREFECT__SERVER_FINAL": "1"}
+    env.pop("PREFECT_API_URL", None)
+    with open(log_path, "ab") as log:
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "uvicorn", "--app-dir", app_dir, "--factory", "prefect.server.api.server:create_app",
+             "--host", "127.0.0.1", "--port", str(port), "--log-level", "error", "--lifespan", "on"],
+            stdin=subprocess.DEVNULL, stdout=log, stderr=log, env=env, start_new_session=True,
+            preexec_fn=_die_with_parent,
+        )
+    (Path(log_dir) / PID_NAME).write_text(f"{proc.pid}\n")
+    previous = os.environ.get("PREFECT_API_URL")
+    try:
+        _wait_healthy(proc, url, timeout_s, log_path)
+        os.environ["PREFECT_API_URL"] = url
+        yield url
+    finally:
+        if previous is None:
+            os.environ.pop("PREFECT_API_URL", None)
+        else:
+            os.environ["PREFECT_API_URL"] = previous
+        _stop(proc)
+
+
+def _wait_healthy(proc: subprocess.Popen[bytes], url: str, timeout_s: float, log_path: Path) -> None:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise CampaignError(f"Prefect's API server exited with code {proc.returncode} while starting; see {log_path}")
+        try:
+            with urllib.request.urlopen(f"{url}/health", timeout=2) as response:
+                if response.status == 200:
+                    return
+        except (urllib.error.URLError, ConnectionError, TimeoutError):
+            pass
+        time.sleep(0.2)
+    _stop(proc)
+    raise CampaignError(f"Prefect's API server did not answer within {timeout_s:g} s; see {log_path}")
+
+
+def _stop(proc: subprocess.Popen[bytes]) -> None:
+    if proc.poll() is not None:
+        return
+    proc.terminate()
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait()
