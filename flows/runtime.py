@@ -1,4 +1,4 @@
-"""Prefect settings for a campaign: offline, quiet, and a local API when none is configured.
+"""Prefect settings for a campaign: offline and quiet.
 
 These must be in the environment before ``prefect`` is first imported, so every entry point that
 runs a flow calls :func:`configure_prefect` first. A user's own settings always win: only unset
@@ -16,7 +16,7 @@ DEFAULTS = {
     "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "120",
     "PREFECT_SERVER_UI_ENABLED": "false",
     "PREFECT_LOGGING_LEVEL": "WARNING",
-    # The temporary server logs an "Error flushing events" traceback on a healthy shutdown.
+    # A local API server logs an "Error flushing events" traceback on a healthy shutdown.
     "PREFECT_SERVER_LOGGING_LEVEL": "CRITICAL",
     "PREFECT_LOGGING_TO_API_ENABLED": "false",
 }
@@ -25,11 +25,4 @@ DEFAULTS = {
 def configure_prefect() -> None:
     """Put our defaults in the environment; must run before ``prefect`` is imported."""
     for key, value in DEFAULTS.items():
-        if value:
-            os.environ.setdefault(key, value)
-
-
-
-def using_temporary_server() -> bool:
-    """True when no Prefect API is configured, so the run starts its own temporary one."""
-    return not os.environ.get("PREFECT_API_URL")
+        os.environ.setdefault(key, value)
