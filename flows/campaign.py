@@ -10,12 +10,14 @@ from __future__ import annotations
 
 import queue
 import time
+import warnings
 from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+from sklearn.exceptions import ConvergenceWarning
 
 from sortie.flows.runtime import configure_prefect
 
@@ -25,6 +27,7 @@ from prefect import flow, task  # noqa: E402  (settings must be in the environme
 from prefect.cache_policies import NO_CACHE  # noqa: E402
 from prefect.futures import PrefectFuture  # noqa: E402
 from prefect.settings import PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings  # noqa: E402
+from prefect.states import Completed, Failed, State  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
 
 from sortie import campaign as campaign_folder  # noqa: E402
@@ -284,22 +287,44 @@ class _Conductor:
 
 
 @flow(name="campaign", log_prints=True)
-def campaign_flow(campaign_dir: str) -> dict[str, int]:
+def campaign_flow(campaign_dir: str) -> State:
     """Run a campaign's designs through its solver until its plan is done."""
     directory = Path(campaign_dir)
-    config, base_dir = campaign_folder.load(directory)
-    adapter = build_adapter(config.solver, config.quantities, base_dir)
-    with Ledger.open(ledger_path(directory)) as ledger:
-        conductor = _Conductor(directory, config, ledger, adapter)
-        conductor.plan()
-        conductor.run()
-        cases = ledger.cases()
-    return {"cases_done": sum(c.state == "done" for c in cases), "cases_failed": sum(c.state == "failed" for c in cases)}
+    try:
+        config, base_dir = campaign_folder.load(directory)
+        adapter = build_adapter(config.solver, config.quantities, base_dir)
+        with Ledger.open(ledger_path(directory)) as ledger:
+            conductor = _Conductor(directory, config, ledger, adapter)
+            conductor.plan()
+            conductor.run()
+            cases = ledger.cases()
+    except SortieError as err:
+        # A campaign that stops for a reason the user can act on is a failed run with a message,
+        # not a crash: no traceback, and the reason travels back to the caller in the state.
+        return Failed(message=str(err), data={"error": str(err)})
+    return Completed(data={"cases_done": sum(c.state == "done" for c in cases),
+                           "cases_failed": sum(c.state == "failed" for c in cases)})
 
 
 def run_campaign(directory: Path) -> dict[str, int]:
-    """Run the campaign in ``directory`` (prepared by :func:`sortie.campaign.prepare`) to its end."""
+    """Run the campaign in ``directory`` (prepared by :func:`sortie.campaign.prepare`) to its end.
+
+    Raises
+    ------
+    CampaignError
+        When the campaign stops before its plan is done; the message says why.
+    """
     config, _ = campaign_folder.load(directory, check_solver=check_solver)
+    # Routine GP ConvergenceWarnings (a length-scale at its bound) are kept in each surrogate's
+    # warnings_; the surrogates catch them with catch_warnings, which is not thread-safe, so with
+    # case threads running a few could slip through to the terminal. Silence that category here.
+    warnings.filterwarnings("ignore", category=ConvergenceWarning)
     runner = ThreadPoolTaskRunner(max_workers=config.slots)
     with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):
-        return campaign_flow.with_options(task_runner=runner, flow_run_name=config.campaign.name)(str(directory))
+        state = campaign_flow.with_options(task_runner=runner, flow_run_name=config.campaign.name)(
+            str(directory), return_state=True)
+    result = state.result(raise_on_failure=False)
+    if state.is_failed():
+        message = result.get("error") if isinstance(result, dict) else state.message
+        raise CampaignError(str(message or "the campaign flow failed"))
+    return result

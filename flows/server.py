@@ -10,6 +10,7 @@ instead of the terminal.
 
 from __future__ import annotations
 
+import atexit
 import contextlib
 import ctypes
 import importlib.util
@@ -21,7 +22,6 @@ import sys
 import time
 import urllib.error
 import urllib.request
-from collections.abc import Iterator
 from pathlib import Path
 
 from sortie.errors import CampaignError
@@ -43,12 +43,13 @@ def _free_port() -> int:
         return int(sock.getsockname()[1])
 
 
-@contextlib.contextmanager
-def local_api(log_dir: Path, *, timeout_s: float = 120.0) -> Iterator[str]:
-    """Start a private Prefect API on a free loopback port; yields its URL, stops it on exit.
+def start_local_api(log_dir: Path, *, timeout_s: float = 120.0) -> str:
+    """Start a private Prefect API on a free loopback port and return its URL.
 
-    Sets ``PREFECT_API_URL`` for this process while it runs, so it must be entered before
-    ``prefect`` is imported.
+    Sets ``PREFECT_API_URL`` for this process, so call it before ``prefect`` is imported. The
+    server is stopped at interpreter exit by a hook registered *before* Prefect's own, so it
+    runs after Prefect has flushed its pending events (exit hooks run last-registered first);
+    if the process dies without running hooks, the kernel's parent-death signal stops it.
     """
     spec = importlib.util.find_spec("prefect")
     if spec is None or spec.origin is None:
@@ -68,17 +69,10 @@ def local_api(log_dir: Path, *, timeout_s: float = 120.0) -> Iterator[str]:
             preexec_fn=_die_with_parent,
         )
     (Path(log_dir) / PID_NAME).write_text(f"{proc.pid}\n")
-    previous = os.environ.get("PREFECT_API_URL")
-    try:
-        _wait_healthy(proc, url, timeout_s, log_path)
-        os.environ["PREFECT_API_URL"] = url
-        yield url
-    finally:
-        if previous is None:
-            os.environ.pop("PREFECT_API_URL", None)
-        else:
-            os.environ["PREFECT_API_URL"] = previous
-        _stop(proc)
+    atexit.register(_stop, proc)
+    _wait_healthy(proc, url, timeout_s, log_path)
+    os.environ["PREFECT_API_URL"] = url
+    return url
 
 
 def _wait_healthy(proc: subprocess.Popen[bytes], url: str, timeout_s: float, log_path: Path) -> None:

@@ -8,7 +8,6 @@ the traceback instead. Prefect is imported only inside ``run``, so ``check``, ``
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import sys
@@ -68,19 +67,17 @@ def run(
     prepared = campaign.prepare(config, cfg, directory)
     typer.echo(f"{'continuing' if prepared.existed else 'starting'} campaign {cfg.campaign.name!r} in {directory}")
     from sortie.flows.runtime import configure_prefect
-    from sortie.flows.server import local_api
+    from sortie.flows.server import start_local_api
 
     configure_prefect()
-    server = contextlib.nullcontext()
     if not os.environ.get("PREFECT_API_URL"):
         typer.echo("starting a local Prefect API for this run (about 10 s; set PREFECT_API_URL to use a running server)")
-        server = local_api(directory)
-    try:
-        with server:
-            from sortie.flows.campaign import run_campaign
+        start_local_api(directory)
+    from sortie.flows.campaign import run_campaign
 
-            with LedgerWatcher(directory, cfg, stream=sys.stdout):
-                run_campaign(directory)
+    try:
+        with LedgerWatcher(directory, cfg, stream=sys.stdout):
+            run_campaign(directory)
     except KeyboardInterrupt:
         typer.echo(f"interrupted; finished cases are kept. Continue with: sortie run {config} --dir {directory}", err=True)
         raise typer.Exit(130) from None

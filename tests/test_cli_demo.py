@@ -164,3 +164,18 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_finishes_the_campaign(tmp_pat
         assert len(ledger.designs()) == config["budget"]["designs"]
     assert all(c.state == "done" for c in cases)
     assert all(c.attempts == 1 for c in cases if c.id in done_before), "finished cases are never run again"
+
+
+def test_a_campaign_that_cannot_go_on_says_why_in_one_line(tmp_path: Path) -> None:
+    from tests.conftest import FIXTURES, branin_config, write_config
+
+    config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:always_fails"})
+    path = write_config(tmp_path, config)
+    env = {**os.environ, "PREFECT_HOME": str(tmp_path / "prefect-home")}
+    env.pop("PREFECT_API_URL", None)
+    result = sortie("run", str(path), "--dir", str(tmp_path / "camp"), env=env, cwd=tmp_path)
+    assert result.returncode == 2
+    assert "Traceback" not in result.stdout + result.stderr
+    errors = [line for line in result.stderr.splitlines() if line.strip()]
+    assert len(errors) == 1 and errors[0].startswith("error: the baseline design failed")
+    assert "solver diverged" in errors[0] and "error.txt" in errors[0]
