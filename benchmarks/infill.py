@@ -153,6 +153,7 @@ def summarise(problem: Problem, runs: dict[str, list[Run]]) -> dict[str, Any]:
         median = float(statistics.median(reached)) if reached else None
         timings = [t for r in seeds for t in r.proposal_s]
         out["strategies"][name] = {
+            "best_curves": [[None if not np.isfinite(b) else float(b) for b in run.best_curve()] for run in seeds],
             "evals_to_1pct": evals,
             "median_evals_to_1pct": median if median is not None and np.isfinite(median) else None,
             "final_regret": regret,
@@ -160,19 +161,36 @@ def summarise(problem: Problem, runs: dict[str, list[Run]]) -> dict[str, Any]:
             "evaluations": [len(r.X) for r in seeds],
             "mean_proposal_s": float(np.mean(timings)) if timings else None,
         }
+    if "classic" in out["strategies"]:
+        finals = [r for r in out["strategies"]["classic"]["final_regret"] if r is not None]
+        if finals:
+            target = problem.reference + statistics.median(finals)
+            for s in out["strategies"].values():
+                # evaluations until the best feasible value is as good as classic's median final value
+                hits = [next((i + 1 for i, b in enumerate(curve) if b is not None and b <= target), None)
+                        for curve in s["best_curves"]]
+                reached = sorted(h if h is not None else np.inf for h in hits)
+                med = float(statistics.median(reached))
+                s["evals_to_match_classic"] = hits
+                s["median_evals_to_match_classic"] = med if np.isfinite(med) else None
+            out["classic_designs"] = statistics.median(out["strategies"]["classic"]["evaluations"])
     return out
 
 
 def print_table(summary: dict[str, Any]) -> None:
     print(f"\n{summary['problem']}: budget {summary['budget']} evaluations, reference {summary['reference']:.6g}")
-    print("| strategy | median evals to 1 % | reached 1 % | median final regret | mean proposal s |")
-    print("|---|---|---|---|---|")
+    print("| strategy | median evals to 1 % | reached 1 % | median final regret | median evals to match classic | mean proposal s |")
+    print("|---|---|---|---|---|---|")
     for name, s in summary["strategies"].items():
         reached = sum(e is not None for e in s["evals_to_1pct"])
         med = "never" if s["median_evals_to_1pct"] is None else f"{s['median_evals_to_1pct']:g}"
         reg = "-" if s["median_final_regret"] is None else f"{s['median_final_regret']:.3g}"
+        match = s.get("median_evals_to_match_classic", "-")
+        match = "never" if match is None else (f"{match:g}" if isinstance(match, float) else match)
         tps = "-" if s["mean_proposal_s"] is None else f"{s['mean_proposal_s']:.2f}"
-        print(f"| {name} | {med} | {reached}/{len(s['evals_to_1pct'])} | {reg} | {tps} |")
+        print(f"| {name} | {med} | {reached}/{len(s['evals_to_1pct'])} | {reg} | {match} | {tps} |")
+    if "classic_designs" in summary:
+        print(f"(classic spends {summary['classic_designs']:g} evaluations: baseline, central composite, confirmation)")
     if summary["problem"] in PUBLISHED_EGO:
         print(f"(efficient global optimisation needed about {PUBLISHED_EGO[summary['problem']]} evaluations; "
               "Jones et al. 1998, from memory)")
