@@ -153,17 +153,16 @@ class _Models:
 
 
 def _fit_target(X: np.ndarray, y: np.ndarray, models: Sequence[str], seed: int,
-                gp_options: dict[str, Any]) -> tuple[Surrogate, list[ModelScore]]:
-    """The best model by LOO among those with a standard deviation (EI needs one)."""
+                gp_options: dict[str, Any]) -> tuple[Surrogate, list[ModelScore], dict[str, Surrogate]]:
+    """The best model by LOO among those with a standard deviation (EI needs one), and all fitted."""
     with_std = [m for m in models if m in ("gp", "quadratic")] or ["gp"]
-    options = {"gp": gp_options}
+    fitted: dict[str, Surrogate] = {}
     best, scores = choose_surrogate(X, y, candidates=list(dict.fromkeys([*with_std, *models])), random_state=seed,
-                                    options=options)
+                                    options={"gp": gp_options}, fitted=fitted)
     if not best.has_std:
         usable = [s for s in scores if s.name in with_std and np.isfinite(s.loo_rmse)]
-        name = min(usable, key=lambda s: s.loo_rmse).name if usable else "gp"
-        best, _ = choose_surrogate(X, y, candidates=[name], random_state=seed, options=options)
-    return best, scores
+        best = fitted[min(usable, key=lambda s: s.loo_rmse).name] if usable else best
+    return best, scores, fitted
 
 
 def fit_models(history: History, settings: InfillSettings, seed: int,
@@ -171,8 +170,9 @@ def fit_models(history: History, settings: InfillSettings, seed: int,
     """Fit the objective, margin and success models; None when too few designs have succeeded.
 
     Every ``full_fit_every``-th design (counted by finished designs) the GP hyper-parameters get a
-    full search with restarts; in between each GP starts from the previous fit's kernel
-    (``warm``) without restarts, which costs a fraction of a full search.
+    full maximum-likelihood search with restarts; in between each GP keeps the previous fit's
+    kernel (``warm``) and is only refactorised on the new data, one Cholesky instead of a search
+    (gp.md §1: hyper-parameters move little from one design to the next).
     """
     ok = history.usable()
     if ok.sum() < MIN_POINTS:
@@ -183,12 +183,13 @@ def fit_models(history: History, settings: InfillSettings, seed: int,
     ys = [history.objective[ok]] + [history.margins[ok, j] for j in range(history.margins.shape[1])]
     fitted, scores, chosen, kernels = [], {}, {}, {}
     for i, (target, y) in enumerate(zip(targets, ys, strict=True)):
-        gp_options = {} if full or target not in (warm or {}) else {"warm_kernel": warm[target], "n_restarts": 0}
-        model, s = _fit_target(X, y, settings.models, seed + i, gp_options)
+        gp_options = {} if full or target not in (warm or {}) else {"warm_kernel": warm[target], "optimize": False}
+        model, s, candidates = _fit_target(X, y, settings.models, seed + i, gp_options)
         fitted.append(model)
         scores[target], chosen[target] = s, model.name
-        if isinstance(model, GaussianProcessSurrogate) and model.kernel_ is not None:
-            kernels[target] = model.kernel_
+        gp = candidates.get("gp")
+        if isinstance(gp, GaussianProcessSurrogate):
+            kernels[target] = gp.kernel_  # kept even when another model won, to warm-start the next GP
         elif warm and target in warm:
             kernels[target] = warm[target]
     success = SuccessModel(random_state=seed).fit(history.X, history.succeeded)

@@ -189,6 +189,9 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         A previous fit's ``kernel_`` to start the optimiser from (with ``n_restarts=0`` a refit
         after one more design then costs a few likelihood evaluations instead of a search).
         Ignored when its number of hyper-parameters does not match the data.
+    optimize : bool, default=True
+        Fit the hyper-parameters by maximum likelihood. False keeps the (warm) kernel as given,
+        so a refit is one Cholesky factorisation: cheap refits between full searches (gp.md §1).
 
     Attributes
     ----------
@@ -249,8 +252,10 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         length_scale_bounds: tuple[float, float] = (1e-2, 1e2),
         random_state: int | np.random.RandomState | None = None,
         warm_kernel: Kernel | None = None,
+        optimize: bool = True,
     ) -> None:
         self.warm_kernel = warm_kernel
+        self.optimize = optimize
         self.n_restarts = n_restarts
         self.noise = noise
         self.length_scale_bounds = length_scale_bounds
@@ -327,7 +332,7 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
             X,
             y_norm,
             alpha=_ALPHA_WITH_NOISE if self.noise else _ALPHA_WITHOUT_NOISE,
-            optimise=not constant,
+            optimise=not constant and bool(self.optimize),
         )
         if not np.isfinite(self.model_.log_marginal_likelihood_value_):
             self.warnings_.append("NonFiniteLikelihood: the fitted log marginal likelihood is not finite.")
@@ -898,6 +903,7 @@ def choose_surrogate(
     candidates: Sequence[str] = ("gp", "quadratic", "rbf"),
     random_state: int | np.random.RandomState | None = None,
     options: Mapping[str, Mapping[str, Any]] | None = None,
+    fitted: dict[str, Surrogate] | None = None,
 ) -> tuple[Surrogate, list[ModelScore]]:
     """Fit each candidate and keep the one with the smallest leave-one-out RMSE.
 
@@ -918,6 +924,9 @@ def choose_surrogate(
         Passed to :func:`make_surrogate`.
     options : mapping of name to parameters, optional
         Extra constructor parameters per candidate (``set_params``), e.g. a GP's warm kernel.
+    fitted : dict, optional
+        Filled with every candidate that could be fitted, by name (to reuse a GP's kernel even
+        when another model won).
 
     Returns
     -------
@@ -959,6 +968,8 @@ def choose_surrogate(
         press = float(residuals @ residuals)
         rmse = math.sqrt(press / n)
         r2 = 1.0 - press / ss_tot if ss_tot > 0 else math.nan
+        if fitted is not None:
+            fitted[name] = model
         note = f"{_plural(len(model.warnings_), 'fit warning')}; see warnings_" if model.warnings_ else ""
         scores.append(ModelScore(name, rmse, r2, n, note))
         if rmse < best_rmse:

@@ -80,7 +80,9 @@ def test_warm_kernels_are_returned_and_reused() -> None:
     X2 = np.vstack([X, first.x])
     models = fit_models(_history(X2, _quadratic(X2)), FAST, seed=2, warm=first.kernels)
     assert models is not None
-    assert models.objective.get_params()["n_restarts"] == 0  # warm refit, no restart search
+    params = models.objective.get_params()
+    assert params["optimize"] is False  # warm refit: the previous kernel, no hyper-parameter search
+    assert np.array_equal(models.objective.kernel_.theta, first.kernels["objective"].theta)
 
 
 def test_stop_rule_fires_when_improvement_is_negligible() -> None:
