@@ -46,7 +46,7 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
     for note in sampling_notes(cfg.plan.initial):
         typer.echo(f"note: {note}")
     typer.echo(f"{config}: ok - {cfg.space().n_dims} free parameters, {n_cond} conditions, "
-               f"baseline + {n_initial} initial designs = {(n_initial + 1) * n_cond} cases, budget {cfg.budget.designs} designs, "
+               f"baseline + {n_initial} initial designs = {(n_initial + 1) * n_cond} cases, plan {cfg.target_designs()} designs, "
                f"{cfg.slots} slots, adapter {cfg.solver['adapter']}")
 
 

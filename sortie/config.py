@@ -214,9 +214,21 @@ class PlanSection(_Section):
 
 
 class BudgetSection(_Section):
-    """What the campaign may spend: designs, counting the baseline."""
+    """What the campaign may spend: designs (the baseline counted) and/or cases; the tighter wins."""
 
-    designs: int = Field(gt=0)
+    designs: int | None = Field(default=None, gt=0)
+    cases: int | None = Field(default=None, gt=0)
+
+    @model_validator(mode="after")
+    def _something(self) -> BudgetSection:
+        if self.designs is None and self.cases is None:
+            raise ValueError("give designs, cases or both (every design costs one case per condition)")
+        return self
+
+    def max_designs(self, n_conditions: int) -> int:
+        """Designs the budget allows: each design costs one case per condition."""
+        limits = [v for v in (self.designs, None if self.cases is None else self.cases // n_conditions) if v is not None]
+        return min(limits)
 
 
 class CampaignConfig(_Section):
@@ -286,8 +298,11 @@ class CampaignConfig(_Section):
             what = f"the baseline plus the {n_initial} designs of plan.initial ({initial.method})"
             if self.plan.classic is not None:
                 what += " and the confirmation design of plan.classic"
-            if needed > self.budget.designs:
+            n_cond = len(self.condition_list())
+            if self.budget.designs is not None and needed > self.budget.designs:
                 problems.append(f"budget.designs: {self.budget.designs} cannot hold {what}; allowed: at least {needed}")
+            if self.budget.cases is not None and needed * n_cond > self.budget.cases:
+                problems.append(f"budget.cases: {self.budget.cases} cannot hold {what} at {n_cond} conditions each; allowed: at least {needed * n_cond}")
         if problems:
             raise _Problems(problems)
         return self
@@ -297,13 +312,14 @@ class CampaignConfig(_Section):
         from sortie.plan import initial_unit_points
 
         planned = 1 + len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+        budget = self.budget.max_designs(len(self.condition_list()))
         if self.plan.classic is not None:
-            return min(self.budget.designs, planned + 1)
+            return min(budget, planned + 1)
         if self.plan.infill is None:
             return planned
         if self.plan.infill.designs is None:
-            return self.budget.designs
-        return min(self.budget.designs, planned + self.plan.infill.designs)
+            return budget
+        return min(budget, planned + self.plan.infill.designs)
 
     def condition_list(self) -> list[dict[str, float]]:
         """The conditions as one mapping per operating point, in config order."""

@@ -38,6 +38,7 @@ def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
     return {
         "campaign": config.campaign.name,
         "budget_designs": config.budget.designs,
+        "budget_cases": config.budget.cases,
         "designs_planned": config.target_designs(),
         "designs_total": len(designs),
         "designs_done": sum(d.status == "done" for d in designs),

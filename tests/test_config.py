@@ -319,3 +319,31 @@ def test_bad_config_cases_are_distinct_and_enough() -> None:
     assert len(set(texts)) == len(texts)
     assert DEMO_TEXT not in texts
     assert sum(not case.marks for case in BAD_CONFIGS) >= 20
+
+
+def test_cases_budget_caps_the_designs_at_one_case_per_condition(tmp_path: Path) -> None:
+    config = _demo()
+    config["plan"] = {"initial": {"method": "sobol", "designs": 16}, "infill": {}}
+    config["budget"] = {"cases": 100}  # 4 conditions: 25 designs
+    assert parse_config(yaml.safe_dump(config), base_dir=tmp_path).target_designs() == 25
+    config["budget"] = {"cases": 100, "designs": 20}  # the tighter limit wins
+    assert parse_config(yaml.safe_dump(config), base_dir=tmp_path).target_designs() == 20
+
+
+def test_cases_budget_too_small_for_the_initial_design_names_the_minimum(tmp_path: Path) -> None:
+    config = _demo()
+    config["budget"] = {"cases": 60}  # baseline + 16 Sobol' designs at 4 conditions need 68
+    with pytest.raises(ConfigError) as info:
+        parse_config(yaml.safe_dump(config), base_dir=tmp_path)
+    assert info.value.problems == [
+        "budget.cases: 60 cannot hold the baseline plus the 16 designs of plan.initial (sobol) at 4 conditions each; "
+        "allowed: at least 68"
+    ]
+
+
+def test_budget_needs_designs_or_cases(tmp_path: Path) -> None:
+    config = _demo()
+    config["budget"] = {}
+    with pytest.raises(ConfigError) as info:
+        parse_config(yaml.safe_dump(config), base_dir=tmp_path)
+    assert info.value.problems == ["budget: give designs, cases or both (every design costs one case per condition)"]
