@@ -166,12 +166,19 @@ class Ledger:
     # -- lifecycle -------------------------------------------------------------------------
     @classmethod
     def create(cls, path: Path, meta: Mapping[str, str]) -> Ledger:
-        """Create a new ledger with its schema and metadata in one transaction."""
-        if Path(path).exists():
+        """Create a new ledger with its schema and metadata, appearing at ``path`` all at once.
+
+        The file is built under a temporary name and renamed into place, so a reader (a
+        progress watcher, ``sortie status``) never sees a ledger without its tables.
+        """
+        path = Path(path)
+        if path.exists():
             raise LedgerError(f"{path}: a ledger already exists here; open it instead of creating one")
-        ledger = cls(path)
+        building = path.with_name(path.name + ".new")
+        for leftover in (building, Path(f"{building}-wal"), Path(f"{building}-shm")):
+            leftover.unlink(missing_ok=True)
+        ledger = cls(building)
         try:
-            ledger._writer_pragmas()
             with ledger.transaction() as c:
                 for stmt in _SCHEMA.strip().split(";\n"):
                     if stmt.strip():
@@ -180,9 +187,11 @@ class Ledger:
                 c.executemany("INSERT INTO meta(key, value) VALUES (?, ?)", rows.items())
         except BaseException:
             ledger.close()
-            Path(path).unlink(missing_ok=True)
+            building.unlink(missing_ok=True)
             raise
-        return ledger
+        ledger.close()  # rollback journal while building: the file is complete once closed
+        os.replace(building, path)
+        return cls.open(path)
 
     @classmethod
     def open(cls, path: Path, *, readonly: bool = False) -> Ledger:
