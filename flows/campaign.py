@@ -32,7 +32,7 @@ from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
 
 from sortie import campaign as campaign_folder  # noqa: E402
 from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, SolverAdapter  # noqa: E402
-from sortie.adapters.registry import build_adapter, check_solver  # noqa: E402
+from sortie.adapters.registry import build_adapter  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
 from sortie.errors import CampaignError, SortieError  # noqa: E402
 from sortie.goal import Goal  # noqa: E402
@@ -314,7 +314,7 @@ def run_campaign(directory: Path) -> dict[str, int]:
     CampaignError
         When the campaign stops before its plan is done; the message says why.
     """
-    config, _ = campaign_folder.load(directory, check_solver=check_solver)
+    config, _ = campaign_folder.load(directory)  # the flow builds (and so checks) the adapter once
     # Routine GP ConvergenceWarnings (a length-scale at its bound) are kept in each surrogate's
     # warnings_; the surrogates catch them with catch_warnings, which is not thread-safe, so with
     # case threads running a few could slip through to the terminal. Silence that category here.

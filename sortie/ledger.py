@@ -26,6 +26,8 @@ SCHEMA_VERSION = 1
 LEDGER_NAME = "ledger.sqlite"
 CASE_STATES = ("planned", "submitting", "running", "done", "failed")
 DESIGN_STATES = ("pending", "done", "failed")
+# The attempt row of a case's current attempt (parameters: case id, case id).
+_CURRENT_ATTEMPT = "case_id = ? AND number = (SELECT attempts FROM cases WHERE id = ?)"
 
 _SCHEMA = """
 CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -277,11 +279,8 @@ class Ledger:
         """Record the job id (pid or scheduler id) as soon as it is known."""
         with self.transaction() as c:
             c.execute("UPDATE cases SET state = 'running', job_id = ? WHERE id = ?", (job_id, case_id))
-            c.execute(
-                "UPDATE attempts SET state = 'running', job_id = ?, pgid = ? WHERE case_id = ? AND number ="
-                " (SELECT attempts FROM cases WHERE id = ?)",
-                (job_id, pgid, case_id, case_id),
-            )
+            c.execute(f"UPDATE attempts SET state = 'running', job_id = ?, pgid = ? WHERE {_CURRENT_ATTEMPT}",
+                      (job_id, pgid, case_id, case_id))
 
     def finish_case(self, case_id: int, *, quantities: Mapping[str, float] | None = None,
                     failure_class: str | None = None, reason: str | None = None) -> None:
@@ -298,20 +297,17 @@ class Ledger:
                 (state, now, json.dumps(dict(quantities)) if ok and quantities is not None else None,
                  failure_class, reason, case_id),
             )
-            c.execute(
-                "UPDATE attempts SET state = ?, ended_at = ?, failure_class = ?, reason = ? WHERE case_id = ? AND number ="
-                " (SELECT attempts FROM cases WHERE id = ?)",
-                (state, now, failure_class, reason, case_id, case_id),
-            )
+            c.execute(f"UPDATE attempts SET state = ?, ended_at = ?, failure_class = ?, reason = ? WHERE {_CURRENT_ATTEMPT}",
+                      (state, now, failure_class, reason, case_id, case_id))
             if not ok:
                 self._event(c, "case-failed", f"case {case_id} failed ({failure_class}): {reason}", {"case": case_id})
 
     def requeue(self, case_id: int, *, why: str, reason: str) -> None:
         """Put a case back to ``planned``; its current attempt ends as ``why`` (lost, interrupted)."""
-        case_sql, attempt_sql = _requeue_sql()
         with self.transaction() as c:
-            c.execute(attempt_sql, (why, time.time(), reason, case_id, case_id))
-            c.execute(case_sql, (case_id,))
+            c.execute(f"UPDATE attempts SET state = ?, ended_at = ?, reason = ? WHERE {_CURRENT_ATTEMPT}",
+                      (why, time.time(), reason, case_id, case_id))
+            c.execute("UPDATE cases SET state = 'planned', job_id = NULL, ended_at = NULL WHERE id = ?", (case_id,))
             self._event(c, "case-requeued", f"case {case_id} requeued ({why}): {reason}", {"case": case_id})
 
     def finish_design(self, design_id: int, *, status: str, objective: float | None = None,
@@ -441,10 +437,3 @@ def writable_dir(path: Path) -> None:
     except OSError as err:
         raise LedgerError(f"{path}: the campaign folder cannot be written ({err.strerror or err}); choose a writable folder with --dir") from None
 
-
-def _requeue_sql() -> tuple[str, str]:
-    return (
-        "UPDATE cases SET state = 'planned', job_id = NULL, ended_at = NULL WHERE id = ?",
-        "UPDATE attempts SET state = ?, ended_at = ?, reason = ? WHERE case_id = ? AND number ="
-        " (SELECT attempts FROM cases WHERE id = ?)",
-    )
