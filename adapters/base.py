@@ -85,6 +85,10 @@ class SolverAdapter(Protocol):
 
     Options: ClassVar[type[BaseModel]]
     poll_interval_s: float
+    #: True when jobs outlive the orchestrator (a batch scheduler's jobs): an interrupted run
+    #: leaves them running and a resumed run re-attaches them. False for local processes, which
+    #: an interrupted run kills and a resumed run starts again.
+    detached: ClassVar[bool]
 
     def start(self, case: CaseSpec) -> JobHandle: ...
 
@@ -93,6 +97,18 @@ class SolverAdapter(Protocol):
     def collect(self, handle: JobHandle, case: CaseSpec) -> CaseOutcome: ...
 
     def cancel(self, handle: JobHandle) -> None: ...
+
+    def attach(self, case: CaseSpec, job_id: str | None, pgid: int | None) -> JobHandle | None:
+        """Find a case's job again after the orchestrator stopped without recording its end.
+
+        Called on resume for each case the ledger holds as submitting (``job_id`` None: the job
+        may or may not have been submitted) or running. Returns a handle when the job still
+        exists (queued, running, or ended with its output in place), so the run waits for it
+        and collects it instead of starting it again; returns None when nothing of it can be
+        used, after removing leftovers (an orphaned local process group is killed), so the case
+        is run again.
+        """
+        ...
 
 
 def check_quantities(values: Mapping[str, Any], expected: list[str], where: str) -> CaseOutcome:

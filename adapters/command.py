@@ -67,6 +67,7 @@ class CommandAdapter:
 
     Options = CommandOptions
     poll_interval_s = 0.1
+    detached = False
 
     def __init__(self, options: CommandOptions, quantities: Mapping[str, QuantitySpec], base_dir: Path) -> None:
         self.options = options
@@ -151,6 +152,36 @@ class CommandAdapter:
     def cancel(self, handle: JobHandle) -> None:
         run = self._running.pop(handle.case_id, None)
         kill_group(int(handle.pgid or handle.job_id), self.options.kill_grace_s, run.proc if run else None)
+
+    def attach(self, case: CaseSpec, job_id: str | None, pgid: int | None) -> JobHandle | None:
+        """A local solver cannot be waited for by a new orchestrator: kill what is left, run again.
+
+        The case's process group may outlive a killed orchestrator (it has its own session). It
+        is killed only if one of its processes still works in this case's folder, so a process
+        id reused by something else since then is never hit.
+        """
+        group = pgid if pgid is not None else (int(job_id) if job_id and job_id.isdigit() else None)
+        if group is not None and _group_works_in(group, Path(case.workdir)):
+            kill_group(group, self.options.kill_grace_s, None)
+        return None
+
+
+def _group_works_in(pgid: int, folder: Path) -> bool:
+    """True if a live process of group ``pgid`` has its working directory inside ``folder``."""
+    folder = folder.resolve()
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+            if int(fields[2]) != pgid or fields[0] == "Z":
+                continue
+            cwd = Path(os.readlink(entry / "cwd"))
+        except (OSError, ValueError):
+            continue
+        if cwd == folder or folder in cwd.parents:
+            return True
+    return False
 
 
 def kill_group(pgid: int, grace_s: float, proc: subprocess.Popen[bytes] | None) -> None:

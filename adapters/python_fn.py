@@ -38,6 +38,7 @@ class PythonAdapter:
 
     Options = PythonOptions
     poll_interval_s = 0.0
+    detached = False
 
     def __init__(self, options: PythonOptions, quantities: Mapping[str, QuantitySpec], base_dir: Path) -> None:
         self.options = options
@@ -84,6 +85,10 @@ class PythonAdapter:
 
     def cancel(self, handle: JobHandle) -> None:
         self._outcomes.pop(handle.case_id, None)
+
+    def attach(self, case: CaseSpec, job_id: str | None, pgid: int | None) -> JobHandle | None:
+        """An in-process call dies with its orchestrator; the case is always run again."""
+        return None
 
 
 def load_function(spec: str, base_dir: Path) -> Callable[..., Any]:

@@ -154,8 +154,7 @@ class _Conductor:
             else:
                 spec = plan.infill
                 assert spec is not None
-                settings = InfillSettings(tuple(spec.models), spec.candidates, spec.restarts, spec.min_distance,
-                                          spec.stop_below)
+                settings = InfillSettings.from_spec(spec)
                 proposal, stage = propose_infill(history, settings, seed=seed, warm=self.kernels), "infill"
         except ValueError as err:  # e.g. every candidate within min_distance of an existing design
             self.stop_reason = f"no further design can be proposed ({err})"

@@ -191,6 +191,7 @@ class InfillSpec(_Section):
     restarts: int = Field(default=8, ge=1, le=100)
     min_distance: float = Field(default=0.001, gt=0, lt=0.5)
     stop_below: float | None = Field(default=None, gt=0, lt=1)
+    incumbent: Literal["best-observed", "best-predicted"] = "best-observed"
 
 
 class ClassicSpec(_Section):

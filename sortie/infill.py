@@ -99,6 +99,13 @@ class InfillSettings:
     stop_below: float | None = None
     full_fit_every: int = 5
     std_cycle: tuple[float, ...] = (1.0, 0.3, 0.05)
+    incumbent: str = "best-observed"
+
+    @classmethod
+    def from_spec(cls, spec: Any) -> InfillSettings:
+        """Settings from the config's ``plan.infill`` section (an :class:`~sortie.config.InfillSpec`)."""
+        return cls(models=tuple(spec.models), candidates=spec.candidates, restarts=spec.restarts,
+                   min_distance=spec.min_distance, stop_below=spec.stop_below, incumbent=spec.incumbent)
 
 
 @dataclass(frozen=True)
