@@ -9,6 +9,7 @@ go to files in the case folder, and a failure reason always names the file to lo
 from __future__ import annotations
 
 import contextlib
+import json
 import os
 import shutil
 import signal
@@ -29,6 +30,9 @@ from sortie.quantities import QuantityNotFound, read_quantity
 
 STDOUT = "solver.stdout"
 STDERR = "solver.stderr"
+JOB_FILE = ".sortie-job"  # the solver's process group and start time, for a later orchestrator
+EXIT_FILE = ".solver-exit"  # the solver's exit status, written by the wrapper shell when it ends
+_WRAPPER = f'"$@"; status=$?; echo $status > {EXIT_FILE}; exit $status'
 
 
 class CommandOptions(BaseModel):
@@ -47,9 +51,12 @@ class CommandOptions(BaseModel):
 
 @dataclass
 class _Running:
-    proc: subprocess.Popen[bytes]
+    proc: subprocess.Popen[bytes] | None  # None for a solver re-attached after a restart
+    pgid: int
+    workdir: Path
     deadline: float
     timed_out: bool = False
+    code: int | None = None
 
 
 class CommandAdapter:
@@ -103,26 +110,37 @@ class CommandAdapter:
         env = {**os.environ, **self.options.env}
         with open(workdir / STDOUT, "wb") as out, open(workdir / STDERR, "wb") as err:
             try:
-                proc = subprocess.Popen([program, *argv[1:]], cwd=workdir, stdin=subprocess.DEVNULL, stdout=out,
-                                        stderr=err, env=env, start_new_session=True)
+                # sh runs the solver as an argument list ("$@", never parsed as shell) and writes
+                # its exit status to a file, so a later orchestrator can collect a solver that
+                # outlived the one that started it.
+                proc = subprocess.Popen(["/bin/sh", "-c", _WRAPPER, "sortie-case", program, *argv[1:]], cwd=workdir,
+                                        stdin=subprocess.DEVNULL, stdout=out, stderr=err, env=env,
+                                        start_new_session=True)
             except OSError as exc:
                 raise AdapterError(f"solver.command: {program} cannot be started ({exc.strerror}); check it is an executable program") from None
         now = time.time()
-        self._running[case.case_id] = _Running(proc, time.monotonic() + self.options.timeout_s)
+        (workdir / JOB_FILE).write_text(json.dumps({"pgid": proc.pid, "started_at": now}))
+        self._running[case.case_id] = _Running(proc, proc.pid, workdir, time.monotonic() + self.options.timeout_s)
         return JobHandle(case.case_id, str(proc.pid), now, pgid=proc.pid)
 
     def poll(self, handle: JobHandle) -> JobState:
         run = self._running.get(handle.case_id)
         if run is None:
             return JobState.FAILED
-        code = run.proc.poll()
-        if code is None:
+        if run.proc is not None:
+            code = run.proc.poll()
+            alive = code is None
+        else:  # re-attached: not our child, so watch its group and its exit-status file
+            alive = _group_works_in(run.pgid, run.workdir)
+            code = None if alive else _exit_status(run.workdir)
+        if alive:
             if time.monotonic() < run.deadline:
                 return JobState.RUNNING
             run.timed_out = True
-            kill_group(run.proc.pid, self.options.kill_grace_s, run.proc)
+            kill_group(run.pgid, self.options.kill_grace_s, run.proc)
             return JobState.FAILED
-        kill_group(run.proc.pid, self.options.kill_grace_s, None)  # children left behind by the solver
+        kill_group(run.pgid, self.options.kill_grace_s, None)  # children left behind by the solver
+        run.code = code
         return JobState.DONE if code == 0 else JobState.FAILED
 
     def collect(self, handle: JobHandle, case: CaseSpec) -> CaseOutcome:
@@ -133,9 +151,11 @@ class CommandAdapter:
             return CaseOutcome.failed("transient", f"the solver process {handle.job_id} is no longer tracked by this orchestrator")
         if run.timed_out:
             return CaseOutcome.failed("timeout", f"the solver ran longer than timeout_s={self.options.timeout_s:g} and its process group was killed; see {workdir / STDOUT}")
-        code = run.proc.returncode
+        code = run.code
+        if code is None:
+            return CaseOutcome.failed("transient", f"the solver ended while no orchestrator watched it and left no exit status in {workdir / EXIT_FILE}")
         if code != 0:
-            how = f"was killed by signal {-code}" if code < 0 else f"exited with code {code}"
+            how = f"was killed by signal {code - 128}" if code > 128 else f"exited with code {code}"
             return CaseOutcome.failed("solver", f"the solver {how}{_last_line(stderr)}; see {stderr}")
         quantities: dict[str, float] = {}
         for name, spec in self.quantities.items():
@@ -154,34 +174,59 @@ class CommandAdapter:
         kill_group(int(handle.pgid or handle.job_id), self.options.kill_grace_s, run.proc if run else None)
 
     def attach(self, case: CaseSpec, job_id: str | None, pgid: int | None) -> JobHandle | None:
-        """A local solver cannot be waited for by a new orchestrator: kill what is left, run again.
+        """Take over a solver started by an orchestrator that has since died.
 
-        The case's process group may outlive a killed orchestrator (it has its own session). It
-        is killed only if one of its processes still works in this case's folder, so a process
-        id reused by something else since then is never hit.
+        The solver runs in its own session, so it survives its orchestrator. If its group still
+        works in this case's folder it is watched until it ends (its timeout counted from its
+        real start); if it has ended, its exit-status file says how. A process id is trusted only
+        while one of its processes works in the case folder, so a reused id is never hit. If
+        nothing usable is left (no job file, or no exit status), leftovers are killed and None
+        is returned: the case runs again.
         """
-        group = pgid if pgid is not None else (int(job_id) if job_id and job_id.isdigit() else None)
-        if group is not None and _group_works_in(group, Path(case.workdir)):
-            kill_group(group, self.options.kill_grace_s, None)
+        workdir = Path(case.workdir)
+        try:
+            job = json.loads((workdir / JOB_FILE).read_text())
+            group, started_at = int(job["pgid"]), float(job["started_at"])
+        except (OSError, ValueError, KeyError, TypeError):
+            for stray in _groups_working_in(workdir):  # started, but killed before its job file was written
+                kill_group(stray, self.options.kill_grace_s, None)
+            return None
+        if not _group_works_in(group, workdir) and _exit_status(workdir) is None:
+            return None
+        deadline = time.monotonic() + self.options.timeout_s - max(time.time() - started_at, 0.0)
+        self._running[case.case_id] = _Running(None, group, workdir, deadline)
+        return JobHandle(case.case_id, str(group), started_at, pgid=group)
+
+
+def _exit_status(workdir: Path) -> int | None:
+    try:
+        return int((workdir / EXIT_FILE).read_text().strip())
+    except (OSError, ValueError):
         return None
 
 
-def _group_works_in(pgid: int, folder: Path) -> bool:
-    """True if a live process of group ``pgid`` has its working directory inside ``folder``."""
+def _groups_working_in(folder: Path) -> set[int]:
+    """Process groups with a live process whose working directory is inside ``folder``."""
     folder = folder.resolve()
+    groups = set()
     for entry in Path("/proc").iterdir():
         if not entry.name.isdigit():
             continue
         try:
             fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
-            if int(fields[2]) != pgid or fields[0] == "Z":
+            if fields[0] == "Z":
                 continue
             cwd = Path(os.readlink(entry / "cwd"))
-        except (OSError, ValueError):
+        except (OSError, ValueError, IndexError):
             continue
         if cwd == folder or folder in cwd.parents:
-            return True
-    return False
+            groups.add(int(fields[2]))
+    return groups
+
+
+def _group_works_in(pgid: int, folder: Path) -> bool:
+    """True if a live process of group ``pgid`` has its working directory inside ``folder``."""
+    return pgid in _groups_working_in(folder)
 
 
 def kill_group(pgid: int, grace_s: float, proc: subprocess.Popen[bytes] | None) -> None:

@@ -9,6 +9,7 @@ stopped at any moment keeps everything that finished.
 from __future__ import annotations
 
 import queue
+import threading
 import time
 import warnings
 from collections import deque
@@ -55,16 +56,38 @@ class _Finished:
     future: PrefectFuture[CaseOutcome]
 
 
+@dataclass
+class _Stop:
+    """Set when the run is interrupted; case tasks then stop watching their jobs."""
+
+    event: threading.Event = field(default_factory=threading.Event)
+    cancel_detached: bool = False
+
+    def cancels(self, adapter: SolverAdapter) -> bool:
+        """Whether an interrupted run cancels this adapter's jobs (local ones always)."""
+        return not adapter.detached or self.cancel_detached
+
+
 @task(name="run-case", task_run_name="solve-{case.name}", cache_policy=NO_CACHE)
-def run_case(case: CaseSpec, adapter: SolverAdapter, inbox: queue.Queue[Any]) -> CaseOutcome:
-    """Run one case through the solver adapter until it ends."""
-    handle = adapter.start(case)
-    inbox.put(_Started(case.case_id, handle))
+def run_case(case: CaseSpec, adapter: SolverAdapter, inbox: queue.Queue[Any], stop: _Stop,
+             handle: JobHandle | None = None) -> CaseOutcome | None:
+    """Run one case through the solver adapter until it ends (or watch a re-attached job).
+
+    Returns None when the run was interrupted first: the job was then cancelled, or left
+    running for the next run to re-attach if the adapter's jobs outlive the orchestrator.
+    """
+    if handle is None:
+        handle = adapter.start(case)
+        inbox.put(_Started(case.case_id, handle))
     try:
         while adapter.poll(handle) not in TERMINAL:
-            time.sleep(adapter.poll_interval_s)
+            if stop.event.wait(adapter.poll_interval_s):
+                if stop.cancels(adapter):
+                    adapter.cancel(handle)
+                return None
     except BaseException:
-        adapter.cancel(handle)
+        if stop.cancels(adapter):
+            adapter.cancel(handle)
         raise
     return adapter.collect(handle, case)
 
@@ -82,9 +105,12 @@ class _Conductor:
     inbox: queue.Queue[Any] = field(default_factory=queue.Queue)
     in_flight: dict[int, tuple[CaseSpec, JobHandle | None]] = field(default_factory=dict)
     waiting: deque[CaseRow] = field(default_factory=deque)
+    stop: _Stop = field(default_factory=_Stop)
+    not_before: dict[int, float] = field(default_factory=dict)
     stop_reason: str | None = None
     infill_note: str | None = None
     kernels: dict[str, Any] | None = None
+    left_running: int = 0
 
     def __post_init__(self) -> None:
         self.goal = self.config.goal.build()
@@ -101,16 +127,20 @@ class _Conductor:
 
     # -- run -------------------------------------------------------------------------------
     def run(self) -> None:
-        for case in self.ledger.cases(states=("submitting", "running")):
-            # A previous run ended without recording this case's end; its local process is gone.
-            self.ledger.requeue(case.id, why="lost", reason="the orchestrator stopped while the case ran")
+        self.reattach()
         self.waiting = deque(self.ledger.cases(states=("planned",)))
+        for case in self.waiting:
+            self._schedule_retry(case.id)
         self.score_finished_designs()
         try:
             while True:
                 self.fill_slots()
                 if not self.in_flight:
-                    break
+                    if not self.waiting or self.stop_reason is not None:
+                        break
+                    # only retries waiting out their back-off: sleep in short steps (signals stay prompt)
+                    time.sleep(min(1.0, max(0.0, min(self.not_before.get(c.id, 0.0) for c in self.waiting) - time.time())))
+                    continue
                 try:
                     # a short timeout keeps the main thread responsive to Ctrl-C and SIGTERM
                     message = self.inbox.get(timeout=1.0)
@@ -127,12 +157,51 @@ class _Conductor:
         if self.stop_reason is not None:
             raise CampaignError(self.stop_reason)
 
+    def reattach(self) -> None:
+        """Pick up the cases a previous run left in flight: wait for live jobs, run the rest again."""
+        for case in self.ledger.cases(states=("submitting", "running")):
+            spec = self._spec(case)
+            attempts = self.ledger.case_attempts(case.id)
+            pgid = attempts[-1]["pgid"] if attempts else None
+            handle = self.adapter.attach(spec, case.job_id, pgid)
+            if handle is None:
+                self.ledger.requeue(case.id, why="lost", reason="the orchestrator stopped while the case ran and nothing "
+                                    "of that run could be used; it runs again")
+                continue
+            if case.state == "submitting" or case.job_id != handle.job_id:
+                self.ledger.mark_running(case.id, handle.job_id, handle.pgid)
+            self.ledger.event("case-reattached", f"case {case.name} re-attached to job {handle.job_id}",
+                              {"case": case.id, "job": handle.job_id})
+            self.in_flight[case.id] = (spec, handle)
+            self._launch(spec, handle)
+
     def fill_slots(self) -> None:
-        """Start waiting cases while slots are free; when none wait, ask the plan for a new design."""
+        """Start due cases while slots are free; when none is due, ask the plan for a new design."""
         while self.stop_reason is None and len(self.in_flight) < self.config.slots:
-            if not self.waiting and not self.next_design():
-                return
-            self.submit(self.waiting.popleft())
+            row = self._pop_due()
+            if row is None:
+                if not self.next_design():
+                    return
+                continue
+            self.submit(row)
+
+    def _pop_due(self) -> CaseRow | None:
+        now = time.time()
+        for row in self.waiting:
+            if self.not_before.get(row.id, 0.0) <= now:
+                self.waiting.remove(row)
+                self.not_before.pop(row.id, None)
+                return row
+        return None
+
+    def _schedule_retry(self, case_id: int) -> None:
+        """After a failed attempt, hold the case back for its back-off (also across restarts)."""
+        attempts = self.ledger.case_attempts(case_id)
+        if not attempts or attempts[-1]["state"] != "failed":
+            return
+        last = attempts[-1]
+        n = sum(a["failure_class"] == last["failure_class"] for a in attempts)
+        self.not_before[case_id] = (last["ended_at"] or time.time()) + self.config.retries.wait_s(n)
 
     # -- infill ----------------------------------------------------------------------------
     def next_design(self) -> bool:
@@ -203,14 +272,20 @@ class _Conductor:
             return self.goal.constraints[int(target.split()[1])].source
         return target
 
-    def submit(self, row: CaseRow) -> None:
+    def _spec(self, row: CaseRow) -> CaseSpec:
         values = self.ledger.design(row.design_id).values
-        spec = CaseSpec(row.id, row.name, row.design_id, values, row.condition,
+        return CaseSpec(row.id, row.name, row.design_id, values, row.condition,
                         self.directory / campaign_folder.CASES / row.name)
+
+    def submit(self, row: CaseRow) -> None:
+        spec = self._spec(row)
         self.ledger.mark_submitting(row.id, spec.workdir)  # written before the solver starts
         self.in_flight[row.id] = (spec, None)
-        future = run_case.submit(spec, self.adapter, self.inbox)
-        future.add_done_callback(lambda f, cid=row.id: self.inbox.put(_Finished(cid, f)))
+        self._launch(spec, None)
+
+    def _launch(self, spec: CaseSpec, handle: JobHandle | None) -> None:
+        future = run_case.submit(spec, self.adapter, self.inbox, self.stop, handle)
+        future.add_done_callback(lambda f, cid=spec.case_id: self.inbox.put(_Finished(cid, f)))
 
     def handle(self, message: Any) -> None:
         if isinstance(message, _Started):
@@ -222,6 +297,8 @@ class _Conductor:
         message.future.wait()
         spec, _ = self.in_flight.pop(message.case_id)
         result = message.future.result(raise_on_failure=False)
+        if result is None:  # stopped watching after an interrupt; abandon_in_flight recorded it
+            return
         if isinstance(result, SortieError):
             # A broken set-up (template, program) fails every case alike: stop, keep the case.
             self.ledger.requeue(message.case_id, why="setup", reason=str(result))
@@ -234,13 +311,37 @@ class _Conductor:
         outcome: CaseOutcome = result
         if outcome.ok:
             self.ledger.finish_case(message.case_id, quantities=outcome.quantities)
+        elif self._retries_left(message.case_id, outcome.failure_class):
+            self.ledger.retry_case(message.case_id, failure_class=outcome.failure_class, reason=outcome.reason or "")
+            self._schedule_retry(message.case_id)
+            self.waiting.append(self.ledger.case(message.case_id))
+            return
         else:
             self.ledger.finish_case(message.case_id, failure_class=outcome.failure_class, reason=outcome.reason)
         self.score_finished_designs()
 
+    def _retries_left(self, case_id: int, failure_class: str | None) -> bool:
+        """Whether the failure policy allows another attempt after this failure."""
+        if failure_class is None:
+            return False
+        earlier = sum(a["failure_class"] == failure_class for a in self.ledger.case_attempts(case_id)[:-1])
+        return earlier < self.config.retries.allowed(failure_class)
+
     def abandon_in_flight(self, why: str, reason: str) -> None:
-        """Stop every case still running and put it back in the plan for the next run."""
-        for case_id, (_, handle) in list(self.in_flight.items()):
+        """Stop watching the cases in flight after an interrupt.
+
+        Local solvers die with the run, so they are cancelled and put back in the plan. Batch
+        jobs outlive it: they are left running, recorded with their job ids, for the next run to
+        re-attach, unless the run was asked to cancel them.
+        """
+        self.stop.event.set()
+        for case_id, (spec, handle) in list(self.in_flight.items()):
+            if not self.stop.cancels(self.adapter):
+                self.left_running += 1
+                self.ledger.event("case-left-running", f"case {spec.name} left running as job "
+                                  f"{handle.job_id if handle else '(being submitted)'} for the next run to re-attach",
+                                  {"case": case_id})
+                continue
             if handle is not None:
                 self.adapter.cancel(handle)
             self.ledger.requeue(case_id, why=why, reason=reason)
@@ -286,14 +387,18 @@ class _Conductor:
 
 
 @flow(name="campaign", log_prints=True)
-def campaign_flow(campaign_dir: str) -> State:
-    """Run a campaign's designs through its solver until its plan is done."""
+def campaign_flow(campaign_dir: str, cancel_jobs: bool = False) -> State:
+    """Run a campaign's designs through its solver until its plan is done.
+
+    ``cancel_jobs``: on an interrupt, cancel batch jobs too instead of leaving them running
+    for the next run to re-attach.
+    """
     directory = Path(campaign_dir)
     try:
         config, base_dir = campaign_folder.load(directory)
         adapter = build_adapter(config.solver, config.quantities, base_dir)
         with Ledger.open(ledger_path(directory)) as ledger:
-            conductor = _Conductor(directory, config, ledger, adapter)
+            conductor = _Conductor(directory, config, ledger, adapter, stop=_Stop(cancel_detached=cancel_jobs))
             conductor.plan()
             conductor.run()
             cases = ledger.cases()
@@ -305,7 +410,7 @@ def campaign_flow(campaign_dir: str) -> State:
                            "cases_failed": sum(c.state == "failed" for c in cases)})
 
 
-def run_campaign(directory: Path) -> dict[str, int]:
+def run_campaign(directory: Path, *, cancel_jobs: bool = False) -> dict[str, int]:
     """Run the campaign in ``directory`` (prepared by :func:`sortie.campaign.prepare`) to its end.
 
     Raises
@@ -321,7 +426,7 @@ def run_campaign(directory: Path) -> dict[str, int]:
     runner = ThreadPoolTaskRunner(max_workers=config.slots)
     with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):
         state = campaign_flow.with_options(task_runner=runner, flow_run_name=config.campaign.name)(
-            str(directory), return_state=True)
+            str(directory), cancel_jobs, return_state=True)
     result = state.result(raise_on_failure=False)
     if state.is_failed():
         message = result.get("error") if isinstance(result, dict) else state.message

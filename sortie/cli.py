@@ -54,18 +54,53 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
 def run(
     config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")],
     directory: Annotated[Path | None, typer.Option("--dir", help="Campaign folder [default: campaigns/<name>].")] = None,
+    cancel_jobs: Annotated[bool, typer.Option("--cancel-jobs", help="On Ctrl-C or SIGTERM, cancel batch jobs too (default: leave them running for resume).")] = False,
 ) -> None:
-    """Run a campaign to the end of its plan; an existing folder with the same config is continued.
+    """Run a campaign to the end of its plan; an existing folder of the same campaign is continued.
 
     Example: sortie run configs/sled-aftbody.yaml --dir campaigns/sled
     """
     from sortie import campaign
-    from sortie.progress import LedgerWatcher
+    from sortie.ledger import writable_dir
+    from sortie.lock import CampaignLock
 
     cfg = _load_config(config)
     directory = directory or Path("campaigns") / cfg.campaign.name
-    prepared = campaign.prepare(config, cfg, directory)
-    typer.echo(f"{'continuing' if prepared.existed else 'starting'} campaign {cfg.campaign.name!r} in {directory}")
+    writable_dir(directory)
+    with CampaignLock(directory) as lock:
+        prepared = campaign.prepare(config, cfg, directory)
+        typer.echo(f"{'continuing' if prepared.existed else 'starting'} campaign {cfg.campaign.name!r} in {directory}")
+        for change in prepared.accepted:
+            typer.echo(f"accepted config change: {change}")
+        _conduct(directory, cfg, lock, cancel_jobs)
+
+
+@app.command()
+def resume(
+    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
+    cancel_jobs: Annotated[bool, typer.Option("--cancel-jobs", help="On Ctrl-C or SIGTERM, cancel batch jobs too (default: leave them running for resume).")] = False,
+) -> None:
+    """Carry on an interrupted campaign with its recorded config: nothing finished is lost or run twice.
+
+    Example: sortie resume campaigns/sled-aftbody
+    """
+    from sortie import campaign
+    from sortie.lock import CampaignLock
+
+    with CampaignLock(directory) as lock:
+        cfg, _ = campaign.load(directory)
+        typer.echo(f"resuming campaign {cfg.campaign.name!r} in {directory}")
+        _conduct(directory, cfg, lock, cancel_jobs)
+
+
+def _conduct(directory: Path, cfg, lock, cancel_jobs: bool) -> None:
+    """Run the campaign flow under the held lock; an interrupt ends with the resume command."""
+    import signal
+
+    from sortie.progress import LedgerWatcher
+
+    if lock.stale_message():
+        typer.echo(lock.stale_message())
     from sortie.flows.runtime import configure_prefect
     from sortie.flows.server import start_local_api
 
@@ -73,15 +108,35 @@ def run(
     if not os.environ.get("PREFECT_API_URL"):
         typer.echo("starting a local Prefect API for this run (about 10 s; set PREFECT_API_URL to use a running server)")
         start_local_api(directory)
+    from prefect.exceptions import TerminationSignal
+
     from sortie.flows.campaign import run_campaign
 
+    received: list[int] = []
+
+    def _interrupt(signum: int, frame: object) -> None:
+        received.append(signum)
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _interrupt)  # SIGTERM stops the run the same careful way as Ctrl-C
     try:
         with LedgerWatcher(directory, cfg, stream=sys.stdout):
-            run_campaign(directory)
-    except KeyboardInterrupt:
-        typer.echo(f"interrupted; finished cases are kept. Continue with: sortie run {config} --dir {directory}", err=True)
-        raise typer.Exit(130) from None
+            run_campaign(directory, cancel_jobs=cancel_jobs)
+    except (KeyboardInterrupt, TerminationSignal) as exc:
+        by_term = signal.SIGTERM in received or isinstance(exc, TerminationSignal)
+        _print_interrupted(directory, by_term)
+        raise typer.Exit(143 if by_term else 130) from None
     _print_result(directory, cfg)
+
+
+def _print_interrupted(directory: Path, by_term: bool) -> None:
+    from sortie.ledger import Ledger, ledger_path
+
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        left = ledger.cases(states=("submitting", "running"))
+    jobs = f"; {len(left)} batch jobs left running, to be re-attached" if left else ""
+    typer.echo(f"{'stopped by SIGTERM' if by_term else 'interrupted'}; finished cases are kept{jobs}. "
+               f"Continue with: sortie resume {directory}", err=True)
 
 
 def _print_result(directory: Path, cfg) -> None:
@@ -142,7 +197,14 @@ def status(
     typer.echo(f"campaign {s['campaign']!r} in {directory}")
     typer.echo(describe(s))
     if s["failures_by_class"]:
-        typer.echo("failures: " + ", ".join(f"{k} {v}" for k, v in sorted(s["failures_by_class"].items())))
+        typer.echo("failed cases by class: " + ", ".join(f"{k} {v}" for k, v in sorted(s["failures_by_class"].items())))
+    typer.echo(f"attempts: {s['attempts_total']} ({s['retries']} retries after a failure, {s['restarts']} restarts after an "
+               "interrupted run)")
+    for cls, entry in sorted(s["attempt_failures"].items()):
+        typer.echo(f"  failed attempts, {cls}: {entry['attempts']}; e.g. {entry['reasons'][0]}")
+    if s["running"]:
+        typer.echo("in flight: " + ", ".join(f"{r['case']} (job {r['job_id'] or 'being submitted'})" for r in s["running"][:20])
+                   + (f" and {len(s['running']) - 20} more" if len(s["running"]) > 20 else ""))
     typer.echo("designs by stage: " + ", ".join(f"{k} {v}" for k, v in s["stages"].items()))
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" if c["loo_rmse"] is not None else f"{c['name']} skipped"

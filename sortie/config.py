@@ -232,6 +232,31 @@ class BudgetSection(_Section):
         return min(limits)
 
 
+class RetrySection(_Section):
+    """How often a failed case is tried again, per failure class, and how long to wait between tries.
+
+    Transient failures (a node lost, a job pre-empted or vanished) say nothing about the design,
+    so they are retried by default. Solver and output failures usually repeat on the same input
+    and are not, so they feed the failure-aware infill instead. Waits grow as
+    ``backoff_s * 2**(k-1)`` for the k-th retry, up to ``backoff_max_s``.
+    """
+
+    transient: int = Field(default=3, ge=0, le=100)
+    timeout: int = Field(default=0, ge=0, le=100)
+    solver: int = Field(default=0, ge=0, le=100)
+    output: int = Field(default=0, ge=0, le=100)
+    backoff_s: float = Field(default=30.0, ge=0)
+    backoff_max_s: float = Field(default=900.0, ge=0)
+
+    def allowed(self, failure_class: str) -> int:
+        """Retries allowed for a failure class (cancelled cases are never retried)."""
+        return int(getattr(self, failure_class, 0)) if failure_class in ("transient", "timeout", "solver", "output") else 0
+
+    def wait_s(self, retry: int) -> float:
+        """Seconds to wait before the ``retry``-th retry (1-based)."""
+        return min(self.backoff_max_s, self.backoff_s * 2.0 ** max(retry - 1, 0))
+
+
 class CampaignConfig(_Section):
     """A whole campaign config; build it with :func:`load_config`."""
 
@@ -244,6 +269,7 @@ class CampaignConfig(_Section):
     plan: PlanSection
     budget: BudgetSection
     slots: int = Field(default=1, gt=0, le=10000)
+    retries: RetrySection = Field(default_factory=RetrySection)
 
     @field_validator("solver")
     @classmethod

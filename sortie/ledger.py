@@ -310,6 +310,21 @@ class Ledger:
             c.execute("UPDATE cases SET state = 'planned', job_id = NULL, ended_at = NULL WHERE id = ?", (case_id,))
             self._event(c, "case-requeued", f"case {case_id} requeued ({why}): {reason}", {"case": case_id})
 
+    def retry_case(self, case_id: int, *, failure_class: str, reason: str) -> None:
+        """End the current attempt as failed and put the case back to ``planned`` for another try."""
+        now = time.time()
+        with self.transaction() as c:
+            c.execute(f"UPDATE attempts SET state = 'failed', ended_at = ?, failure_class = ?, reason = ? WHERE {_CURRENT_ATTEMPT}",
+                      (now, failure_class, reason, case_id, case_id))
+            c.execute("UPDATE cases SET state = 'planned', job_id = NULL, ended_at = ?, failure_class = ?,"
+                      " failure_reason = ? WHERE id = ?", (now, failure_class, reason, case_id))
+            self._event(c, "case-retry", f"case {case_id} failed ({failure_class}) and will be tried again: {reason}",
+                        {"case": case_id})
+
+    def case_attempts(self, case_id: int) -> list[dict[str, Any]]:
+        """Every attempt of one case, oldest first."""
+        return [dict(r) for r in self._conn.execute("SELECT * FROM attempts WHERE case_id = ? ORDER BY number", (case_id,))]
+
     def finish_design(self, design_id: int, *, status: str, objective: float | None = None,
                       constraints: Mapping[str, float] | None = None, feasible: bool | None = None) -> None:
         """Record a design's goal values once all its cases are in."""
@@ -373,6 +388,12 @@ class Ledger:
             args.extend(states)
         where = f" WHERE {' AND '.join(clauses)}" if clauses else ""
         return [_case(r) for r in self._conn.execute(f"SELECT * FROM cases{where} ORDER BY id", args)]
+
+    def case(self, case_id: int) -> CaseRow:
+        row = self._conn.execute("SELECT * FROM cases WHERE id = ?", (case_id,)).fetchone()
+        if row is None:
+            raise LedgerError(f"case {case_id} is not in the ledger")
+        return _case(row)
 
     def attempts(self) -> list[dict[str, Any]]:
         return [dict(r) for r in self._conn.execute("SELECT * FROM attempts ORDER BY id")]

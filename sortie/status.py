@@ -59,6 +59,34 @@ def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
         "baseline": _baseline(designs),
         "stages": {stage: sum(d.stage == stage for d in designs) for stage in dict.fromkeys(d.stage for d in designs)},
         "models": ledger.model_choices(),
+        **_attempt_summary(ledger),
+    }
+
+
+def _attempt_summary(ledger: Ledger) -> dict[str, Any]:
+    """Attempts and how they ended: retries, restarts, failure classes with sample reasons, live jobs."""
+    attempts = ledger.attempts()
+    last = {}
+    for a in attempts:
+        last[a["case_id"]] = max(last.get(a["case_id"], 0), a["number"])
+    failed: dict[str, dict[str, Any]] = {}
+    for a in attempts:
+        if a["state"] == "failed" and a["failure_class"]:
+            entry = failed.setdefault(a["failure_class"], {"attempts": 0, "reasons": []})
+            entry["attempts"] += 1
+            if a["reason"] and a["reason"] not in entry["reasons"] and len(entry["reasons"]) < 3:
+                entry["reasons"].append(a["reason"])
+    ended: dict[str, int] = {}
+    for a in attempts:
+        ended[a["state"]] = ended.get(a["state"], 0) + 1
+    return {
+        "attempts_total": len(attempts),
+        "attempts_by_end": ended,
+        "retries": sum(a["state"] == "failed" and a["number"] < last[a["case_id"]] for a in attempts),
+        "restarts": sum(a["state"] in ("lost", "interrupted") for a in attempts),
+        "attempt_failures": failed,
+        "running": [{"case": c.name, "job_id": c.job_id, "state": c.state, "since": c.started_at}
+                    for c in ledger.cases(states=("submitting", "running"))],
     }
 
 

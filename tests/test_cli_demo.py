@@ -105,13 +105,14 @@ def test_export_writes_one_row_per_design(demo, suffix: str) -> None:
 def test_run_refuses_a_folder_holding_another_campaign(demo, tmp_path: Path) -> None:
     directory, _, env = demo
     other = yaml.safe_load(DEMO_CONFIG.read_text())
-    other["slots"] = 2
+    name = next(iter(other["parameters"]))
+    other["parameters"][name]["upper"] = other["parameters"][name]["upper"] * 2
     other["solver"]["template"] = str(DEMO_CONFIG.parent / "cases" / "template")
     path = tmp_path / "other.yaml"
     path.write_text(yaml.safe_dump(other))
     result = sortie("run", str(path), "--dir", str(directory), env=env, cwd=tmp_path)
     assert result.returncode == 2
-    assert "different config" in result.stderr and "Traceback" not in result.stderr
+    assert f"parameters.{name}.upper" in result.stderr and "Traceback" not in result.stderr
     assert len(result.stderr.strip().splitlines()) == 1
 
 
@@ -146,7 +147,7 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_finishes_the_campaign(tmp_pat
     os.killpg(proc.pid, signal.SIGINT)
     out, err = proc.communicate(timeout=60)
     assert proc.returncode == 130, err
-    assert f"Continue with: sortie run {DEMO_CONFIG} --dir {directory}" in err
+    assert f"Continue with: sortie resume {directory}" in err
     assert "Traceback" not in out + err
     server_pid = int((directory / "prefect-server.pid").read_text())
     cmdline = Path(f"/proc/{server_pid}/cmdline")
