@@ -800,7 +800,7 @@ def select_parameters(
             chosen[i] = True
             reasons[nm] = f"selected: {numbers_}; kept rather than fixed unseen"
         elif chosen[i]:
-            reasons[nm] = f"selected: {numbers_}; rule {rule}" if rule != "named list" else f"selected: {numbers_}; named in the list"
+            reasons[nm] = f"selected: {numbers_}; " + ("named in the list" if rule == "named list" else f"rule {rule}")
         else:
             reasons[nm] = f"fixed: {numbers_}; {fixed_note}"
     return Selection(

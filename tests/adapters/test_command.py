@@ -7,9 +7,11 @@ Every solver here is a small Python script written into the test's template fold
 from __future__ import annotations
 
 import contextlib
+import json
 import math
 import os
 import signal
+import subprocess
 import sys
 import textwrap
 import time
@@ -20,7 +22,7 @@ import pytest
 
 from sortie.adapters import registry
 from sortie.adapters.base import CaseSpec, JobHandle, JobState
-from sortie.adapters.command import STDERR, STDOUT, CommandAdapter, CommandOptions
+from sortie.adapters.command import STDERR, STDOUT, CommandAdapter, CommandOptions, kill_group
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError, ConfigError
 
@@ -458,3 +460,81 @@ def test_build_adapter_raises_config_error_with_all_problems(tmp_path):
         registry.build_adapter({"adapter": "comand"}, {}, tmp_path)
     assert len(info.value.problems) == 1
     assert "did you mean 'command'?" in info.value.problems[0]
+
+
+# --------------------------------------------------------------------------- re-attaching after a restart
+
+SLOW_SOLVER = textwrap.dedent('''\
+    import sys, time
+    from pathlib import Path
+    Path("started").write_text("x")
+    while not Path("go").exists():
+        time.sleep(0.01)
+    Path("out.txt").write_text("cd = 0.31\\n")
+    sys.exit(int(sys.argv[1]))
+''')
+
+
+def _slow(tmp_path: Path, code: int = 0, **options: object) -> tuple[CommandAdapter, CaseSpec, JobHandle]:
+    _template(tmp_path, {"slow.py": SLOW_SOLVER})
+    adapter = _adapter(tmp_path, [*PY, "slow.py", str(code)], {"cd": QuantitySpec(file="out.txt", key="cd")}, **options)
+    case = _case(tmp_path)
+    handle = adapter.start(case)
+    end = time.monotonic() + 5
+    while not (case.workdir / "started").exists():
+        assert time.monotonic() < end
+        time.sleep(0.01)
+    return adapter, case, handle
+
+
+def test_a_new_orchestrator_waits_for_a_solver_still_running_and_collects_it(tmp_path: Path) -> None:
+    first, case, handle = _slow(tmp_path)
+    second = _adapter(tmp_path, first.options.command, first.quantities)  # as after a restart: knows nothing
+    attached = second.attach(case, None, None)  # even without the ledger's job id: the case folder knows
+    assert attached is not None and attached.pgid == handle.pgid
+    assert second.poll(attached) is JobState.RUNNING
+    (case.workdir / "go").write_text("x")
+    assert _run(second, attached) is JobState.DONE
+    assert second.collect(attached, case).quantities == {"cd": 0.31}
+
+
+def test_a_solver_that_ended_while_no_orchestrator_watched_is_collected_with_its_exit_status(tmp_path: Path) -> None:
+    first, case, handle = _slow(tmp_path, code=3)
+    (case.workdir / "go").write_text("x")
+    assert _run(first, handle) is JobState.FAILED  # the first orchestrator sees it end, then "dies"
+    second = _adapter(tmp_path, first.options.command, first.quantities)
+    attached = second.attach(case, handle.job_id, handle.pgid)
+    assert attached is not None
+    assert _run(second, attached) is JobState.FAILED
+    outcome = second.collect(attached, case)
+    assert outcome.failure_class == "solver" and "exited with code 3" in outcome.reason
+
+
+def test_a_case_folder_without_a_job_record_is_cleaned_and_run_again(tmp_path: Path, reaper: list[int]) -> None:
+    adapter, case, handle = _slow(tmp_path)
+    (case.workdir / ".sortie-job").unlink()  # as if the orchestrator died before writing it
+    assert adapter.attach(case, None, None) is None
+    assert _wait_gone([handle.pgid], within_s=2.0) == [], "the stray solver was killed"
+
+
+def test_a_reused_process_id_is_never_killed(tmp_path: Path, reaper: list[int]) -> None:
+    adapter, case, handle = _slow(tmp_path)
+    other = subprocess.Popen([sys.executable, "-S", "-c", "import time; time.sleep(30)"], start_new_session=True,
+                             cwd=tmp_path)
+    reaper.append(other.pid)
+    (case.workdir / ".sortie-job").write_text(json.dumps({"pgid": other.pid, "started_at": time.time()}))
+    kill_group(handle.pgid, 0.5, None)
+    assert adapter.attach(case, str(other.pid), other.pid) is None  # that group does not work in the case folder
+    assert _alive(other.pid)
+    other.kill()
+    other.wait()
+
+
+def test_a_reattached_solver_keeps_its_original_deadline(tmp_path: Path) -> None:
+    first, case, handle = _slow(tmp_path, timeout_s=1.0, kill_grace_s=0.2)
+    time.sleep(1.1)
+    second = _adapter(tmp_path, first.options.command, first.quantities, timeout_s=1.0, kill_grace_s=0.2)
+    attached = second.attach(case, handle.job_id, handle.pgid)
+    assert attached is not None
+    assert second.poll(attached) is JobState.FAILED  # already past its timeout: killed at the first poll
+    assert second.collect(attached, case).failure_class == "timeout"

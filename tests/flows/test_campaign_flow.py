@@ -144,3 +144,32 @@ def test_hanging_solver_is_killed_at_its_timeout(tmp_path: Path, monkeypatch: py
         baseline_cases = ledger.cases(design_id=1)
     assert all(c.state == "failed" and c.failure_class == "timeout" for c in baseline_cases)
     assert all(c.ended_at - c.started_at < 10 for c in baseline_cases)
+
+
+def test_failures_are_retried_as_the_policy_allows_with_back_off(tmp_path: Path) -> None:
+    from sortie.status import summary
+
+    config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:branin_flaky"},
+                           retries={"solver": 1, "backoff_s": 0.3})
+    directory = _run(tmp_path, config)
+    with Ledger.open(ledger_path(directory)) as ledger:
+        assert ledger.check_consistency() == []
+        cases, attempts = ledger.cases(), ledger.attempts()
+        cfg, _ = campaign.load(directory)
+        s = summary(ledger, cfg)
+    assert all(c.state == "done" and c.attempts == 2 for c in cases)
+    by_case: dict[int, list[dict]] = {}
+    for a in attempts:
+        by_case.setdefault(a["case_id"], []).append(a)
+    for first, second in by_case.values():
+        assert first["state"] == "failed" and first["failure_class"] == "solver" and "licence server busy" in first["reason"]
+        assert second["state"] == "done"
+        assert second["started_at"] - first["ended_at"] >= 0.3  # the back-off was waited out
+    assert s["retries"] == len(cases) and s["attempt_failures"]["solver"]["attempts"] == len(cases)
+
+
+def test_without_retries_a_failure_is_final(tmp_path: Path) -> None:
+    config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:branin_flaky"},
+                           retries={"solver": 0})
+    with pytest.raises(CampaignError, match="baseline design failed"):
+        _run(tmp_path, config, folder="camp2")
