@@ -346,6 +346,10 @@ class _Conductor:
                 self.adapter.cancel(handle)
             self.ledger.requeue(case_id, why=why, reason=reason)
         self.in_flight.clear()
+        if self.stop.cancels(self.adapter):
+            # the interrupt may land between recording a case as submitting and launching it
+            for case in self.ledger.cases(states=("submitting", "running")):
+                self.ledger.requeue(case.id, why=why, reason=reason)
 
     # -- score -----------------------------------------------------------------------------
     def score_finished_designs(self) -> None:

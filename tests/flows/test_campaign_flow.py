@@ -173,3 +173,44 @@ def test_without_retries_a_failure_is_final(tmp_path: Path) -> None:
                            retries={"solver": 0})
     with pytest.raises(CampaignError, match="baseline design failed"):
         _run(tmp_path, config, folder="camp2")
+
+
+def _mock_log(path: Path) -> tuple[dict[str, int], dict[str, list[str]]]:
+    """Starts per case folder, and the outcomes of the runs that finished, from the mock's run log."""
+    starts: dict[str, int] = {}
+    outcomes: dict[str, list[str]] = {}
+    for line in path.read_text().splitlines():
+        word, _pid, deck, *rest = line.split()
+        folder = str(Path(deck).parent)
+        if word == "start":
+            starts[folder] = starts.get(folder, 0) + 1
+        else:
+            outcomes.setdefault(folder, []).append(rest[0])
+    return starts, outcomes
+
+
+def test_injected_hangs_and_crashes_are_counted_by_class(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    log = tmp_path / "mock.log"
+    for key, value in {"CRASH_RATE": "0.2", "HANG_RATE": "0.2", "RUN_TIME_S": "0.05", "LOG": str(log)}.items():
+        monkeypatch.setenv(f"SORTIE_MOCK_{key}", value)
+    config = _mock_config(conditions={"mach": [0.6, 1.3]}, slots=4,
+                          goal={"minimize": "max(lift) - min(lift)", "subject_to": ["drag <= 10"]},
+                          plan={"initial": {"method": "lhs", "designs": 12}, "infill": {"candidates": 256, "restarts": 2}},
+                          budget={"designs": 16})
+    config["solver"]["timeout_s"] = 1.5
+    config["solver"]["kill_grace_s"] = 0.2
+    directory = _run(tmp_path, config)
+    starts, outcomes = _mock_log(log)
+    hung = {f for f in starts if f not in outcomes}  # a hung run is killed: it never logs its finish
+    crashed = {f for f, o in outcomes.items() if o == ["crash"]}
+    with Ledger.open(ledger_path(directory)) as ledger:
+        assert ledger.check_consistency() == []
+        cases, designs = ledger.cases(), ledger.designs()
+    assert len(designs) == 16, "the campaign ran to its budget despite the failures"
+    assert all(n == 1 for n in starts.values()), "no failed case was retried (retries default to 0 for these classes)"
+    failed = {c.workdir: c.failure_class for c in cases if c.state == "failed"}
+    assert {w for w, k in failed.items() if k == "timeout"} == hung
+    assert {w for w, k in failed.items() if k == "solver"} == crashed
+    # 20 % each over 32 cases: P(no case of a kind) = 0.8**32 < 0.1 %, and the mock's draws are fixed per case
+    assert hung and crashed
+    assert len(failed) == len(hung) + len(crashed)
