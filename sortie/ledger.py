@@ -90,6 +90,12 @@ CREATE TABLE models (
     n_points INTEGER NOT NULL,
     scores_json TEXT NOT NULL
 );
+CREATE TABLE analyses (
+    id INTEGER PRIMARY KEY,
+    at REAL NOT NULL,
+    kind TEXT NOT NULL,
+    data_json TEXT NOT NULL
+);
 CREATE INDEX cases_by_state ON cases(state);
 CREATE INDEX cases_by_design ON cases(design_id);
 """
@@ -217,6 +223,9 @@ class Ledger:
         """WAL lets readers watch while the campaign writes; set only on a file known to be ours."""
         self._conn.execute("PRAGMA journal_mode=WAL")
         self._conn.execute("PRAGMA synchronous=NORMAL")
+        # added within schema 1: ledgers written before it gain the (empty) table on first write
+        self._conn.execute("CREATE TABLE IF NOT EXISTS analyses (id INTEGER PRIMARY KEY, at REAL NOT NULL,"
+                           " kind TEXT NOT NULL, data_json TEXT NOT NULL)")
 
     def close(self) -> None:
         self._conn.close()
@@ -350,6 +359,21 @@ class Ledger:
         return {r["target"]: {"chosen": r["chosen"], "n_points": r["n_points"], "scores": json.loads(r["scores_json"])}
                 for r in rows}
 
+    def add_analysis(self, kind: str, data: Mapping[str, Any]) -> None:
+        """Record the result of an analysis (``screening``, ``sobol``, ...) as one JSON document."""
+        with self.transaction() as c:
+            c.execute("INSERT INTO analyses(at, kind, data_json) VALUES (?, ?, ?)",
+                      (time.time(), kind, json.dumps(_finite_deep(data))))
+
+    def analyses(self, kind: str | None = None) -> list[dict[str, Any]]:
+        """Recorded analyses, oldest first, each ``{"id", "at", "kind", "data"}``; [] if none."""
+        try:
+            rows = self._conn.execute("SELECT * FROM analyses" + (" WHERE kind = ?" if kind else "") + " ORDER BY id",
+                                      (kind,) if kind else ()).fetchall()
+        except sqlite3.OperationalError:  # a ledger from before the table existed, opened read-only
+            return []
+        return [{"id": r["id"], "at": r["at"], "kind": r["kind"], "data": json.loads(r["data_json"])} for r in rows]
+
     def event(self, kind: str, message: str, data: Mapping[str, Any] | None = None) -> None:
         with self.transaction() as c:
             self._event(c, kind, message, data)
@@ -422,6 +446,19 @@ class Ledger:
 def _finite(row: dict[str, Any]) -> dict[str, Any]:
     """JSON has no inf or NaN: store them as null so every reader can parse the ledger."""
     return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in row.items()}
+
+
+def _finite_deep(value: Any) -> Any:
+    """Like :func:`_finite`, through nested lists and mappings (numpy values become plain floats)."""
+    if isinstance(value, Mapping):
+        return {str(k): _finite_deep(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite_deep(v) for v in value]
+    if hasattr(value, "tolist"):
+        return _finite_deep(value.tolist())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
 
 
 def _design(r: sqlite3.Row) -> DesignRow:
