@@ -55,6 +55,7 @@ def start_local_api(log_dir: Path, *, timeout_s: float = 120.0) -> str:
     if spec is None or spec.origin is None:
         raise CampaignError("Prefect is not installed in this environment; reinstall sortie (pip install -e .)")
     app_dir = str(Path(spec.origin).parent.parent)
+    _stop_stale(Path(log_dir) / PID_NAME)
     port = _free_port()
     url = f"http://127.0.0.1:{port}/api"
     log_path = Path(log_dir) / LOG_NAME
@@ -73,6 +74,19 @@ def start_local_api(log_dir: Path, *, timeout_s: float = 120.0) -> str:
     _wait_healthy(proc, url, timeout_s, log_path)
     os.environ["PREFECT_API_URL"] = url
     return url
+
+
+def _stop_stale(pid_file: Path) -> None:
+    """Stop a server a killed earlier run left behind (normally the kernel's parent-death signal
+    already has). The pid is trusted only if it still runs Prefect's app, so a reused pid is safe."""
+    try:
+        pid = int(pid_file.read_text().strip())
+        cmdline = Path(f"/proc/{pid}/cmdline").read_bytes()
+    except (OSError, ValueError):
+        return
+    if b"prefect.server.api.server:create_app" in cmdline:
+        with contextlib.suppress(ProcessLookupError, PermissionError):
+            os.kill(pid, signal.SIGTERM)
 
 
 def _wait_healthy(proc: subprocess.Popen[bytes], url: str, timeout_s: float, log_path: Path) -> None:
