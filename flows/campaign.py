@@ -32,6 +32,7 @@ from prefect.states import Completed, Failed, State  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
 
 from sortie import campaign as campaign_folder  # noqa: E402
+from sortie import stages  # noqa: E402
 from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, SolverAdapter  # noqa: E402
 from sortie.adapters.registry import build_adapter  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
@@ -39,7 +40,8 @@ from sortie.errors import CampaignError, SortieError  # noqa: E402
 from sortie.goal import Goal  # noqa: E402
 from sortie.infill import MIN_POINTS, History, InfillSettings, optimize_surface, propose_infill  # noqa: E402
 from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
-from sortie.plan import initial_designs  # noqa: E402
+from sortie.plan import first_designs, initial_designs  # noqa: E402
+from sortie.space import DesignSpace  # noqa: E402
 
 TERMINAL = (JobState.DONE, JobState.FAILED)
 
@@ -111,15 +113,17 @@ class _Conductor:
     infill_note: str | None = None
     kernels: dict[str, Any] | None = None
     left_running: int = 0
+    space: DesignSpace = field(init=False)
 
     def __post_init__(self) -> None:
         self.goal = self.config.goal.build()
         self.conditions = self.config.condition_list()
+        self.space = self.config.space()
 
     # -- plan ------------------------------------------------------------------------------
     def plan(self) -> None:
-        """Record the baseline and the initial experiment (only what is not recorded yet)."""
-        wanted = initial_designs(self.config.plan.initial, self.config.space(), self.config.campaign.seed)
+        """Record the baseline and the screening or initial experiment (only what is not recorded yet)."""
+        wanted = first_designs(self.config.plan, self.config.space(), self.config.campaign.seed)
         have = len(self.ledger.designs())
         for design in wanted[have:]:
             self.ledger.add_design(stage=design.stage, reason=design.reason, values=design.values,
@@ -205,66 +209,142 @@ class _Conductor:
 
     # -- infill ----------------------------------------------------------------------------
     def next_design(self) -> bool:
-        """Record the next design of the infill or classic stage if one is due now; True if one was."""
+        """Record the next design(s) the plan calls for now; True if any were recorded.
+
+        Stages follow each other as the ledger shows them done: screening (all its designs in,
+        then the selection and the initial experiment on the selected parameters), infill (one
+        design at a time, slots kept busy), then confirmation (once nothing else is pending).
+        """
         plan = self.config.plan
         designs = self.ledger.designs()
-        if (plan.infill is None and plan.classic is None) or self.infill_note is not None:
-            return False
-        if len(designs) >= self.config.target_designs():
-            return False
-        if plan.classic is not None and any(d.status == "pending" for d in designs):
-            return False  # the one-shot surface is fitted to the whole initial experiment
+        if plan.screening is not None and not any(d.stage == "initial" for d in designs):
+            return self._finish_screening(designs)
+        self.space = self._active_space()
+        n_confirm = plan.n_confirmations()
+        if plan.infill is not None and self.infill_note is None and len(designs) < self.config.target_designs() - n_confirm:
+            return self._propose_infill(designs)
+        if n_confirm:
+            return self._propose_confirmation(designs)
+        return False
+
+    def _finish_screening(self, designs: list[Any]) -> bool:
+        """Once every screening design is in: record the effects and the selection, then the initial experiment."""
+        if any(d.stage == "screening" and d.status == "pending" for d in designs):
+            return False  # the selection needs every screening run
+        spec = self.config.plan.screening
+        assert spec is not None
+        result = stages.screen(spec, self.config.space(), designs, self.goal)
+        self.ledger.add_analysis("screening", result)
+        self.ledger.event("screening", f"screening kept {', '.join(result['selected'])}; fixed "
+                          f"{', '.join(result['fixed']) or 'none'} at baseline ({result['rule']})")
+        self.space = self.config.space().keep_free(result["selected"])
+        for design in initial_designs(self.config.plan.initial, self.space, self.config.campaign.seed, full=self.config.space()):
+            design_id = self.ledger.add_design(stage=design.stage, reason=design.reason, values=design.values,
+                                               unit=design.unit, conditions=self.conditions)
+            self.waiting.extend(self.ledger.cases(design_id=design_id))
+        return True
+
+    def _active_space(self) -> DesignSpace:
+        """The campaign's space with the parameters screening left out fixed at their baseline.
+
+        A selection changed in the config since it was recorded (an accepted change of
+        plan.screening.select) is recomputed from the recorded effects and recorded anew.
+        """
+        spec = self.config.plan.screening
+        if spec is None:
+            return self.config.space()
+        recorded = self.ledger.analyses("screening")
+        if not recorded:
+            return self.config.space()
+        latest = recorded[-1]["data"]
+        if latest.get("select") != spec.select.model_dump():
+            latest = stages.reselect(latest, spec.select)
+            self.ledger.add_analysis("screening", latest)
+            self.ledger.event("screening", f"selection changed by the config ({latest['rule']}): kept {', '.join(latest['selected'])}")
+        return self.config.space().keep_free(latest["selected"])
+
+    def _propose_infill(self, designs: list[Any]) -> bool:
+        spec = self.config.plan.infill
+        assert spec is not None
         history = self.history(designs)
-        seed = self.config.campaign.seed * 1000 + len(designs)
         try:
-            if plan.classic is not None:
-                settings = InfillSettings(models=tuple(plan.classic.models))
-                proposal, stage = optimize_surface(history, settings, seed=seed), "confirmation"
-            else:
-                spec = plan.infill
-                assert spec is not None
-                settings = InfillSettings.from_spec(spec)
-                proposal, stage = propose_infill(history, settings, seed=seed, warm=self.kernels), "infill"
+            proposal = propose_infill(history, InfillSettings.from_spec(spec), seed=self._seed(designs), warm=self.kernels)
         except ValueError as err:  # e.g. every candidate within min_distance of an existing design
             self.stop_reason = f"no further design can be proposed ({err})"
             return False
         if proposal is None:
             return False
         self.kernels = proposal.kernels
-        for target, scores in proposal.model_scores.items():
-            self.ledger.add_model_choice(self._target_name(target), proposal.chosen[target], int(history.usable().sum()),
-                                         [s.__dict__ for s in scores])
+        self._record_models(proposal, history)
         if proposal.converged:
             self.infill_note = f"infill stopped: the best expected improvement {proposal.expected_improvement:.3g} fell below stop_below"
             self.ledger.event("infill-stopped", self.infill_note)
             return False
-        space = self.config.space()
-        values = space.to_values(proposal.x[None, :])[0]
-        unit = space.to_unit([values])[0]
+        self._record_proposal(proposal, "infill", proposal.reason())
+        return True
+
+    def _propose_confirmation(self, designs: list[Any]) -> bool:
+        """Confirm the surrogates' predicted optimum with the real solver, once nothing else is pending."""
+        if any(d.status == "pending" for d in designs):
+            return False  # the surfaces are fitted to every result
+        plan = self.config.plan
+        done = [d for d in designs if d.stage == "confirmation"]
+        passed = [d for d in done if d.status == "done" and d.feasible]
+        # a failed confirmation is followed by another while the budget allows (not on the classic path,
+        # which by definition runs its one optimum once)
+        cap = self.config.budget.max_designs(len(self.conditions)) if plan.classic is None else 0
+        if len(done) >= plan.n_confirmations() and (passed or len(designs) >= cap):
+            return False
+        models = (plan.classic.models if plan.classic is not None else
+                  (plan.confirmation.models if plan.confirmation is not None and plan.confirmation.models else None)
+                  or (plan.infill.models if plan.infill is not None else ["quadratic"]))
+        history = self.history(designs)
+        avoid = self.space.to_unit([d.values for d in done]) if done else None
+        confidence = plan.confirmation.confidence if plan.confirmation is not None else 0.5
+        proposal = optimize_surface(history, InfillSettings(models=tuple(models)), seed=self._seed(designs), avoid=avoid,
+                                    confidence=confidence)
+        if proposal is None:  # too few scored designs; the end of the run says so
+            return False
+        self._record_models(proposal, history)
+        n = len(done) + 1
+        why = (f"confirmation {n}: optimum of the fitted {proposal.chosen.get('objective')} surface (SLSQP)"
+               + ("" if not done or passed else f", after {len(done)} failed confirmation(s)"))
+        self._record_proposal(proposal, "confirmation", why)
+        return True
+
+    def _seed(self, designs: list[Any]) -> int:
+        return self.config.campaign.seed * 1000 + len(designs)
+
+    def _record_models(self, proposal: Any, history: History) -> None:
+        for target, scores in proposal.model_scores.items():
+            self.ledger.add_model_choice(self._target_name(target), proposal.chosen[target], int(history.usable().sum()),
+                                         [s.__dict__ for s in scores])
+
+    def _record_proposal(self, proposal: Any, stage: str, reason: str) -> None:
+        values = self.space.to_values(proposal.x[None, :])[0]
+        unit = self.config.space().to_unit([values])[0]
         prediction = proposal.prediction.as_dict()
         if self.goal.sense == "maximize":
             prediction["objective_mean"] = -prediction["objective_mean"]
         prediction["constraints"] = [c.source for c in self.goal.constraints]
-        design_id = self.ledger.add_design(stage=stage, reason=proposal.reason() if stage == "infill" else
-                                           f"optimum of the fitted {proposal.chosen.get('objective')} surface (SLSQP)",
-                                           values=values, unit=unit, conditions=self.conditions, prediction=prediction)
+        design_id = self.ledger.add_design(stage=stage, reason=reason, values=values, unit=unit,
+                                           conditions=self.conditions, prediction=prediction)
         self.waiting.extend(self.ledger.cases(design_id=design_id))
-        return True
 
     def history(self, designs: list[Any]) -> History:
-        """The finished and pending designs as arrays for the surrogates (objective to minimise)."""
+        """The finished and pending designs as arrays for the surrogates (objective to minimise),
+        in the unit cube of the parameters still free."""
         sign = 1.0 if self.goal.sense == "minimize" else -1.0
         finished = [d for d in designs if d.status in ("done", "failed")]
-        pending = [d.unit for d in designs if d.status == "pending"]
-        n_dims = self.config.space().n_dims
+        pending = [d for d in designs if d.status == "pending"]
         sources = [c.source for c in self.goal.constraints]
         return History(
-            X=np.array([d.unit for d in finished], dtype=float).reshape(len(finished), n_dims),
+            X=self.space.to_unit([d.values for d in finished]),
             objective=np.array([sign * d.objective if d.objective is not None else np.nan for d in finished]),
             margins=np.array([[(d.constraints or {}).get(s, np.nan) for s in sources] for d in finished],
                              dtype=float).reshape(len(finished), len(sources)),
             succeeded=np.array([d.status == "done" for d in finished], dtype=bool),
-            pending=np.array(pending, dtype=float).reshape(len(pending), n_dims),
+            pending=self.space.to_unit([d.values for d in pending]),
         )
 
     def _target_name(self, target: str) -> str:
@@ -376,12 +456,16 @@ class _Conductor:
                 continue
             if any(c.state == "failed" for c in cases):
                 self.ledger.finish_design(design_id, status="failed")
-                continue
-            if needs_baseline and baseline is None:
+            elif needs_baseline and baseline is None:
                 continue  # scored once the baseline's cases are all in
-            score = self.goal.score(self._vectors(cases), baseline, self.conditions)  # type: ignore[arg-type]
-            self.ledger.finish_design(design_id, status="done", objective=score.objective,
-                                      constraints=score.constraints, feasible=score.feasible)
+            else:
+                score = self.goal.score(self._vectors(cases), baseline, self.conditions)  # type: ignore[arg-type]
+                self.ledger.finish_design(design_id, status="done", objective=score.objective,
+                                          constraints=score.constraints, feasible=score.feasible)
+            if design.stage == "confirmation":
+                check = stages.confirmation_check(self.ledger.design(design_id), self.goal)
+                self.ledger.add_analysis("confirmation", check)
+                self.ledger.event("confirmation", f"design {design_id} confirmation {check['verdict']}", {"design": design_id})
 
     def _vectors(self, cases: list[CaseRow]) -> dict[str, Any] | None:
         if not cases or any(c.state != "done" for c in cases):

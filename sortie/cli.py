@@ -42,11 +42,14 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
     from sortie.plan import initial_unit_points, sampling_notes
 
     n_initial = len(initial_unit_points(cfg.plan.initial, cfg.space(), cfg.campaign.seed))
+    n_fixed = cfg.designs_before_infill()
+    n_screen = n_fixed - 1 - n_initial
     n_cond = len(cfg.condition_list())
     for note in sampling_notes(cfg.plan.initial):
         typer.echo(f"note: {note}")
+    screen = f"{n_screen} screening + " if n_screen else ""
     typer.echo(f"{config}: ok - {cfg.space().n_dims} free parameters, {n_cond} conditions, "
-               f"baseline + {n_initial} initial designs = {(n_initial + 1) * n_cond} cases, plan {cfg.target_designs()} designs, "
+               f"baseline + {screen}{n_initial} initial designs = {n_fixed * n_cond} cases, plan {cfg.target_designs()} designs, "
                f"{cfg.slots} slots, adapter {cfg.solver['adapter']}")
 
 
@@ -165,9 +168,25 @@ def _print_result(directory: Path, cfg) -> None:
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" for c in choice["scores"] if c["loo_rmse"] is not None)
         typer.echo(f"surrogate for {target}: {choice['chosen']} (leave-one-out RMSE: {scored})")
+    for line in _stage_lines(s):
+        typer.echo(line)
     typer.echo(f"results: ledger {ledger_path(directory)}, case folders {directory / 'cases'}")
     typer.echo(f"next: sortie status {directory}   |   sortie export {directory} --to designs.csv")
     typer.echo(CAUTION)
+
+
+def _stage_lines(s: dict) -> list[str]:
+    """What the screening and confirmation stages concluded, one line each."""
+    lines = []
+    if s["screening"]:
+        scr = s["screening"]
+        lines.append(f"screening ({scr['method']}, {scr['rule']}): kept {', '.join(scr['selected'])}; "
+                     f"fixed at baseline: {', '.join(scr['fixed']) or 'none'}")
+    for check in s["confirmations"]:
+        obj = check["objective"]
+        lines.append(f"confirmation of design {check['design']}: {check['verdict']}; objective predicted "
+                     f"{_fmt(obj['predicted'])} +/- {_fmt(obj['predicted_std'])}, actual {_fmt(obj['actual'])}")
+    return lines
 
 
 def _fmt(v: object) -> str:
@@ -206,6 +225,8 @@ def status(
         typer.echo("in flight: " + ", ".join(f"{r['case']} (job {r['job_id'] or 'being submitted'})" for r in s["running"][:20])
                    + (f" and {len(s['running']) - 20} more" if len(s["running"]) > 20 else ""))
     typer.echo("designs by stage: " + ", ".join(f"{k} {v}" for k, v in s["stages"].items()))
+    for line in _stage_lines(s):
+        typer.echo(line)
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" if c["loo_rmse"] is not None else f"{c['name']} skipped"
                            for c in choice["scores"])

@@ -200,18 +200,90 @@ class ClassicSpec(_Section):
     models: list[ModelName] = Field(default_factory=lambda: ["quadratic"], min_length=1)
 
 
-class PlanSection(_Section):
-    """The stages of the campaign: the initial experiment, then infill or the classic one-shot path."""
+class SelectSpec(_Section):
+    """Which parameters stay free after screening: one rule. The others are fixed at their baseline."""
 
+    top: int | None = Field(default=None, ge=1)
+    fraction: float | None = Field(default=None, gt=0, le=1)
+    keep: list[str] | None = Field(default=None, min_length=1)
+
+    @model_validator(mode="after")
+    def _one_rule(self) -> SelectSpec:
+        given = [k for k in ("top", "fraction", "keep") if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError(f"give exactly one rule: top (the k most important), fraction (of the largest importance) "
+                             f"or keep (a list of names); got {', '.join(given) or 'none'}")
+        return self
+
+
+class ScreeningSpec(_Section):
+    """A screening stage over every free parameter, then a selection carried into later stages.
+
+    ``morris``: ``trajectories`` (r) elementary-effect paths on a ``levels``-level grid, r(k+1)
+    designs. ``one-at-a-time``: a sweep of each parameter through ``levels`` values around the
+    baseline, k(levels-1) designs; cheaper, but blind to interactions.
+    """
+
+    method: Literal["morris", "one-at-a-time"] = "morris"
+    trajectories: int = Field(default=6, ge=2, le=100)
+    levels: int = Field(default=4, ge=2, le=20)
+    select: SelectSpec = Field(default_factory=lambda: SelectSpec(fraction=0.1))
+
+    @model_validator(mode="after")
+    def _levels(self) -> ScreeningSpec:
+        if self.method == "morris" and self.levels % 2:
+            raise ValueError(f"levels ({self.levels}) must be even for morris, so that every step is the same size")
+        if self.method == "one-at-a-time" and self.levels < 3:
+            raise ValueError(f"levels ({self.levels}) must be at least 3 for one-at-a-time, to see more than a slope")
+        return self
+
+    def n_designs(self, n_free: int) -> int:
+        return self.trajectories * (n_free + 1) if self.method == "morris" else n_free * (self.levels - 1)
+
+
+class ConfirmationSpec(_Section):
+    """Re-run the surrogate's predicted optimum at every condition, and compare prediction with result.
+
+    ``designs`` confirmations are run, each at the predicted best point away from those already
+    confirmed; one that turns out infeasible is marked, and another is tried while the budget allows.
+    ``confidence``: the probability, under the surrogates, with which every constraint must hold
+    at the point chosen (0.5 trusts the mean and lands on the constraint boundary).
+    """
+
+    designs: int = Field(default=1, ge=1, le=20)
+    models: list[ModelName] | None = None
+    confidence: float = Field(default=0.9, ge=0.5, lt=1)
+
+
+class PlanSection(_Section):
+    """The stages of the campaign, run in this order: screening, initial, infill or classic, confirmation.
+
+    Only ``initial`` is required; each stage present runs once, and its ``designs`` is its share
+    of the budget (infill without ``designs`` takes what the others leave).
+    """
+
+    screening: ScreeningSpec | None = None
     initial: StageSpec
     infill: InfillSpec | None = None
     classic: ClassicSpec | None = None
+    confirmation: ConfirmationSpec | None = None
 
     @model_validator(mode="after")
     def _one_follow_up(self) -> PlanSection:
         if self.infill is not None and self.classic is not None:
             raise ValueError("give infill or classic after the initial experiment, not both")
+        if self.classic is not None and self.confirmation is not None:
+            raise ValueError("classic already confirms its optimum once; remove confirmation, or use infill before it")
+        if self.screening is not None and self.initial.method not in SIZED_METHODS:
+            raise ValueError(f"after screening the number of free parameters is known only at run time, so "
+                             f"plan.initial.method must be sobol or lhs with 'designs' (got {self.initial.method!r})")
         return self
+
+    def n_confirmations(self) -> int:
+        """Designs reserved at the end of the plan for confirmation runs."""
+        if self.classic is not None:
+            return 1
+        return self.confirmation.designs if self.confirmation is not None else 0
 
 
 class BudgetSection(_Section):
@@ -317,14 +389,23 @@ class CampaignConfig(_Section):
             problems.append(f"plan.initial.method: fractional-factorial needs at least 3 free parameters, the config has {n_free}")
         if initial.method == "central-composite" and n_free < 2:
             problems.append(f"plan.initial.method: central-composite needs at least 2 free parameters, the config has {n_free}")
+        keep = self.plan.screening.select.keep if self.plan.screening is not None else None
+        free = [n for n, p in self.parameters.items() if not p.fixed]
+        for name in keep or []:
+            if name not in free:
+                problems.append(f"plan.screening.select.keep: {name!r} is not a free parameter; allowed: {', '.join(free)}")
         if not problems:
             from sortie.plan import initial_unit_points
 
-            n_initial = len(initial_unit_points(initial, self.space(), self.campaign.seed))
-            needed = n_initial + 1 + (1 if self.plan.classic is not None else 0)
-            what = f"the baseline plus the {n_initial} designs of plan.initial ({initial.method})"
+            n_initial = len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+            n_screen = self.designs_before_infill() - 1 - n_initial
+            needed = 1 + n_screen + n_initial + self.plan.n_confirmations()
+            what = f"the {n_screen} designs of plan.screening, " if n_screen else ""
+            what = f"the baseline plus {what}the {n_initial} designs of plan.initial ({self.plan.initial.method})"
             if self.plan.classic is not None:
                 what += " and the confirmation design of plan.classic"
+            elif self.plan.confirmation is not None:
+                what += f" and the {self.plan.confirmation.designs} design(s) of plan.confirmation"
             n_cond = len(self.condition_list())
             if self.budget.designs is not None and needed > self.budget.designs:
                 problems.append(f"budget.designs: {self.budget.designs} cannot hold {what}; allowed: at least {needed}")
@@ -334,19 +415,23 @@ class CampaignConfig(_Section):
             raise _Problems(problems)
         return self
 
-    def target_designs(self) -> int:
-        """How many designs the campaign records in all: the budget, or less if the plan says so."""
+    def designs_before_infill(self) -> int:
+        """The baseline, the screening designs and the initial experiment (their sizes are fixed)."""
         from sortie.plan import initial_unit_points
 
-        planned = 1 + len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+        n_screen = self.plan.screening.n_designs(self.space().n_dims) if self.plan.screening is not None else 0
+        return 1 + n_screen + len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+
+    def target_designs(self) -> int:
+        """How many designs the campaign records in all: the budget, or less if the plan says so."""
+        fixed = self.designs_before_infill()
         budget = self.budget.max_designs(len(self.condition_list()))
-        if self.plan.classic is not None:
-            return min(budget, planned + 1)
+        confirm = self.plan.n_confirmations()
         if self.plan.infill is None:
-            return planned
+            return min(budget, fixed + confirm)
         if self.plan.infill.designs is None:
             return budget
-        return min(budget, planned + self.plan.infill.designs)
+        return min(budget, fixed + self.plan.infill.designs + confirm)
 
     def condition_list(self) -> list[dict[str, float]]:
         """The conditions as one mapping per operating point, in config order."""

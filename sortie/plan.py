@@ -1,7 +1,7 @@
-"""Turning the config's plan into designs: the baseline first, then the initial experiment.
+"""Turning the config's plan into designs: the baseline first, then screening or the initial experiment.
 
-The list is a pure function of the config and its seed, so a campaign that was interrupted
-while recording it can recompute the list and add only what is missing.
+Each list is a pure function of the config, the space and the seed, so a campaign that was
+interrupted while recording it can recompute the list and add only what is missing.
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ from sortie import sampling
 from sortie.space import DesignSpace
 
 if TYPE_CHECKING:
-    from sortie.config import StageSpec
+    from sortie.config import PlanSection, ScreeningSpec, StageSpec
 
 DEFAULT_FACTORIAL_LEVELS = 3
 DEFAULT_SWEEP_LEVELS = 5
@@ -65,12 +65,50 @@ def sampling_notes(stage: StageSpec) -> list[str]:
     return notes
 
 
-def initial_designs(stage: StageSpec, space: DesignSpace, seed: int) -> list[ProposedDesign]:
-    """The baseline and the initial experiment, in the order they are recorded and run."""
-    baseline = ProposedDesign("baseline", "reference design: every parameter at its baseline",
-                              tuple(space.baseline_unit()), space.baseline())
+def initial_designs(stage: StageSpec, space: DesignSpace, seed: int, *, full: DesignSpace | None = None) -> list[ProposedDesign]:
+    """The initial experiment over the free parameters of ``space``.
+
+    ``full`` is the campaign's whole space when ``space`` keeps only the parameters a screening
+    stage selected; the recorded unit point is always in the whole space, so every design's
+    ``unit`` means the same thing.
+    """
     points = initial_unit_points(stage, space, seed)
-    designs = [baseline]
-    for i, (u, values) in enumerate(zip(points, space.to_values(points), strict=True), start=1):
-        designs.append(ProposedDesign("initial", f"{stage.method} point {i} of {len(points)}", tuple(float(x) for x in u), values))
-    return designs
+    values = space.to_values(points)
+    units = full.to_unit(values) if full is not None else points
+    return [ProposedDesign("initial", f"{stage.method} point {i} of {len(points)}", tuple(float(x) for x in u), v)
+            for i, (u, v) in enumerate(zip(units, values, strict=True), start=1)]
+
+
+def screening_unit_points(spec: ScreeningSpec, space: DesignSpace, seed: int) -> np.ndarray:
+    """The screening design as unit-cube points (baseline excluded), shape (n_points, n_dims)."""
+    from sortie.screening import morris_trajectories
+
+    if spec.method == "morris":
+        return morris_trajectories(space.n_dims, spec.trajectories, levels=spec.levels, seed=seed)
+    return sampling.one_at_a_time(space.baseline_unit(), spec.levels)[1:]
+
+
+def screening_designs(spec: ScreeningSpec, space: DesignSpace, seed: int) -> list[ProposedDesign]:
+    """The screening stage's designs. The recorded unit point is the planned grid point, which the
+    elementary effects are computed from (an integer or choice parameter may snap to a value that
+    differs slightly from it)."""
+    points = screening_unit_points(spec, space, seed)
+    if spec.method == "morris":
+        per = space.n_dims + 1
+        reasons = [f"morris trajectory {i // per + 1} of {spec.trajectories}, point {i % per + 1} of {per}" for i in range(len(points))]
+    else:
+        reasons = [f"one-at-a-time sweep point {i} of {len(points)}" for i in range(1, len(points) + 1)]
+    return [ProposedDesign("screening", why, tuple(float(x) for x in u), v)
+            for why, u, v in zip(reasons, points, space.to_values(points), strict=True)]
+
+
+def baseline_design(space: DesignSpace) -> ProposedDesign:
+    return ProposedDesign("baseline", "reference design: every parameter at its baseline",
+                          tuple(space.baseline_unit()), space.baseline())
+
+
+def first_designs(plan: PlanSection, space: DesignSpace, seed: int) -> list[ProposedDesign]:
+    """What a campaign records at its start: the baseline, then screening or the initial experiment."""
+    if plan.screening is not None:
+        return [baseline_design(space), *screening_designs(plan.screening, space, seed)]
+    return [baseline_design(space), *initial_designs(plan.initial, space, seed)]

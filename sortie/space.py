@@ -10,7 +10,7 @@ design is made, which keeps every sampler and optimiser continuous.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Literal
 
 import numpy as np
@@ -101,6 +101,17 @@ class DesignSpace:
     def names(self) -> tuple[str, ...]:
         """All parameter names, free and fixed, in config order."""
         return tuple(p.name for p in self.parameters)
+
+    def keep_free(self, names: Sequence[str]) -> DesignSpace:
+        """The same space with every free parameter not in ``names`` fixed at its baseline.
+
+        This is how a screening stage's selection reaches later stages: their samplers and
+        surrogates see only the parameters that matter.
+        """
+        unknown = set(names) - {p.name for p in self.free}
+        if unknown:
+            raise ValueError(f"{sorted(unknown)} are not free parameters; allowed: {[p.name for p in self.free]}")
+        return DesignSpace(tuple(p if p.fixed or p.name in names else replace(p, fixed=True) for p in self.parameters))
 
     def baseline(self) -> dict[str, Value]:
         """The reference design: every parameter at its baseline."""

@@ -59,8 +59,14 @@ def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
         "baseline": _baseline(designs),
         "stages": {stage: sum(d.stage == stage for d in designs) for stage in dict.fromkeys(d.stage for d in designs)},
         "models": ledger.model_choices(),
+        "screening": _latest(ledger.analyses("screening")),
+        "confirmations": [a["data"] for a in ledger.analyses("confirmation")],
         **_attempt_summary(ledger),
     }
+
+
+def _latest(analyses: list[dict[str, Any]]) -> dict[str, Any] | None:
+    return analyses[-1]["data"] if analyses else None
 
 
 def _attempt_summary(ledger: Ledger) -> dict[str, Any]:

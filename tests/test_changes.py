@@ -63,3 +63,21 @@ def test_a_budget_below_what_is_recorded_is_refused() -> None:
     assert budget_problems(config, 9) == []
     problems = budget_problems(config, 10)
     assert len(problems) == 1 and "at least 10 designs" in problems[0]
+
+
+def test_adding_infill_is_accepted_and_removing_it_refused() -> None:
+    old = _parse(branin_config())
+    new = _parse(branin_config(plan={"initial": {"method": "lhs", "designs": 8}, "infill": {}}, budget={"designs": 12}))
+    added = compare(old, new)
+    assert "plan.infill 'absent' -> 'present'" in [str(c) for c in added]
+    assert breaking(added) == []
+    assert [str(c) for c in breaking(compare(new, old))] == ["plan.infill 'present' -> 'absent'"]
+
+
+def test_the_screening_selection_rule_may_change_but_not_its_design() -> None:
+    base = {"initial": {"method": "lhs", "designs": 8}, "screening": {"trajectories": 3, "select": {"top": 1}}}
+    old = _parse(branin_config(plan=base, budget={"designs": 30}))
+    rule = _parse(branin_config(plan={**base, "screening": {"trajectories": 3, "select": {"top": 2}}}, budget={"designs": 30}))
+    design = _parse(branin_config(plan={**base, "screening": {"trajectories": 4, "select": {"top": 1}}}, budget={"designs": 30}))
+    assert breaking(compare(old, rule)) == []
+    assert [c.key for c in breaking(compare(old, design))] == ["plan.screening.trajectories"]

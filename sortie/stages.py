@@ -1,0 +1,101 @@
+"""What a stage concludes from the designs it ran: screening effects and selection, confirmation checks.
+
+These are pure functions from ledger rows to JSON-ready documents, which the campaign flow
+records with :meth:`sortie.ledger.Ledger.add_analysis` and reports, status and the notebook API
+read back. The numbers come from :mod:`sortie.screening`; this module only decides which
+outputs are screened and what is recorded.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from sortie.screening import morris_effects, select_parameters, sweep_effects
+from sortie.space import DesignSpace
+
+if TYPE_CHECKING:
+    from sortie.config import ScreeningSpec, SelectSpec
+    from sortie.goal import Goal
+    from sortie.ledger import DesignRow
+
+
+def goal_outputs(designs: Sequence[DesignRow], goal: Goal) -> tuple[list[str], np.ndarray]:
+    """The screened outputs per design: the objective and each constraint margin (NaN where a design failed).
+
+    Screening on the goal's own values (each already taken across the conditions) selects what
+    moves the decision, including a parameter that only moves a constraint.
+    """
+    names = ["objective", *[c.source for c in goal.constraints]]
+    rows = []
+    for d in designs:
+        if d.status != "done" or d.objective is None:
+            rows.append([np.nan] * len(names))
+        else:
+            rows.append([d.objective, *[(d.constraints or {}).get(c.source, np.nan) for c in goal.constraints]])
+    return names, np.array(rows, dtype=float).reshape(len(designs), len(names))
+
+
+def screen(spec: ScreeningSpec, space: DesignSpace, designs: Sequence[DesignRow], goal: Goal) -> dict[str, Any]:
+    """Effects of every free parameter on the goal from the screening designs, and the selection.
+
+    Morris effects are computed on the planned grid points recorded as each design's ``unit``;
+    one-at-a-time effects on the baseline (design 1) and the sweep.
+    """
+    names = [p.name for p in space.free]
+    screening = [d for d in designs if d.stage == "screening"]
+    if spec.method == "morris":
+        outputs, y = goal_outputs(screening, goal)
+        result = morris_effects(np.array([d.unit for d in screening], dtype=float), y, names=names, output_names=outputs)
+        data: dict[str, Any] = {"method": "morris", "parameters": names, "outputs": outputs, "mu": result.mu,
+                                "mu_star": result.mu_star, "sigma": result.sigma, "n_effects": result.n_effects,
+                                "n_trajectories": result.n_trajectories, "importance": "mu_star"}
+        importance = result.mu_star
+    else:
+        rows = [designs[0], *screening]  # the baseline is the centre of every sweep
+        outputs, y = goal_outputs(rows, goal)
+        sweep = sweep_effects(np.array([d.unit for d in rows], dtype=float), y, names=names, output_names=outputs)
+        data = {"method": "one-at-a-time", "parameters": names, "outputs": outputs, "span": sweep.span,
+                "slope": sweep.slope, "n_points": sweep.n_points, "importance": "span"}
+        importance = sweep.span
+    data["n_designs"] = len(screening)
+    data["n_failed"] = sum(d.status != "done" for d in screening)
+    return reselect(data, spec.select, importance=importance)
+
+
+def reselect(data: dict[str, Any], select: SelectSpec, *, importance: Any = None) -> dict[str, Any]:
+    """Apply a selection rule to recorded screening effects; returns a new document."""
+    values = np.asarray(data[data["importance"]] if importance is None else importance, dtype=float)
+    measure = "μ*" if data["method"] == "morris" else "sweep range"
+    chosen = select_parameters(values, data["parameters"], top=select.top, fraction=select.fraction,
+                               keep=select.keep, output_names=data["outputs"], measure=measure)
+    return {**data, "selected": list(chosen.selected), "fixed": list(chosen.fixed), "reasons": dict(chosen.reasons),
+            "score": chosen.scores, "rule": chosen.rule, "select": select.model_dump()}
+
+
+def confirmation_check(design: DesignRow, goal: Goal) -> dict[str, Any]:
+    """Predicted against actual for a confirmation design: objective and every constraint margin.
+
+    A confirmation passes when the real run succeeded and is feasible; the prediction's
+    standard deviations are kept beside each number so a reviewer sees how sure the surrogate was.
+    """
+    pred = design.prediction or {}
+    sources = [c.source for c in goal.constraints]
+    margins_mean = pred.get("margins_mean") or [None] * len(sources)
+    margins_std = pred.get("margins_std") or [None] * len(sources)
+    constraints = [{"constraint": s, "predicted": margins_mean[i], "predicted_std": margins_std[i],
+                    "actual": (design.constraints or {}).get(s)} for i, s in enumerate(sources)]
+    passed = design.status == "done" and bool(design.feasible)
+    if design.status != "done":
+        verdict = "failed: the solver did not finish every case of this design"
+    elif not design.feasible:
+        broken = [c["constraint"] for c in constraints if c["actual"] is not None and c["actual"] > 0]
+        verdict = f"failed: the real run violates {', '.join(broken)}"
+    else:
+        verdict = "passed: the real run is feasible"
+    return {"design": design.id, "passed": passed, "verdict": verdict,
+            "objective": {"predicted": pred.get("objective_mean"), "predicted_std": pred.get("objective_std"),
+                          "actual": design.objective},
+            "constraints": constraints}
