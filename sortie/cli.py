@@ -197,6 +197,7 @@ def _fmt(v: object) -> str:
 def status(
     directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+    watch: Annotated[bool, typer.Option("--watch", help="Follow a running campaign live until it ends (Ctrl-C to stop watching).")] = False,
 ) -> None:
     """Show what a campaign has done, from its ledger (safe while it runs).
 
@@ -204,10 +205,16 @@ def status(
     """
     from sortie import campaign
     from sortie.ledger import Ledger, ledger_path
-    from sortie.progress import describe
+    from sortie.progress import LedgerWatcher, describe
     from sortie.status import summary
 
     cfg, _ = campaign.load(directory)
+    if watch:
+        try:
+            with LedgerWatcher(directory, cfg, stream=sys.stdout) as watcher:
+                watcher.wait_until_finished()
+        except KeyboardInterrupt:
+            pass  # stops the watching only; the campaign runs on elsewhere
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
         s = summary(ledger, cfg)
     if as_json:

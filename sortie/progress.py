@@ -22,14 +22,33 @@ from sortie.ledger import Ledger, ledger_path
 from sortie.status import summary
 
 
-def describe(s: dict[str, Any]) -> str:
-    """One plain line: cases and designs against the plan, failures, and the best design so far."""
+def describe(s: dict[str, Any], slots: int | None = None) -> str:
+    """One plain line: cases and designs against the plan, failures, the best design so far and an ETA."""
     best = s["best"]
     shown = "none yet"
     if best is not None:
         shown = f"design {best['design']} objective {best['objective']:.6g} ({'feasible' if best['feasible'] else 'infeasible'})"
-    return (f"cases {s['cases_done']}/{s['cases_total']} done, {s['cases_running']} running, {s['cases_failed']} failed"
-            f" | designs {s['designs_done'] + s['designs_failed']}/{s['designs_planned']} | best: {shown}")
+    eta = eta_s(s, slots)
+    return (f"cases {s['cases_done']}/{s['cases_total']} done, {s['cases_running']} running, {s['cases_planned']} queued, "
+            f"{s['cases_failed']} failed | designs {s['designs_done'] + s['designs_failed']}/{s['designs_planned']} | "
+            f"best: {shown}" + ("" if eta is None else f" | ETA {_clock(eta)}"))
+
+
+def eta_s(s: dict[str, Any], slots: int | None) -> float | None:
+    """Seconds left: the cases the plan still needs times the mean observed case time, over the slots.
+
+    Proposal time and queueing on a cluster are not in it, so it is a lower bound early on."""
+    if not s.get("mean_case_s") or not slots:
+        return None
+    total = max(s["cases_total"], s["designs_planned"] * s["n_conditions"])
+    left = max(total - s["cases_done"] - s["cases_failed"], 0)
+    return left * s["mean_case_s"] / slots
+
+
+def _clock(seconds: float) -> str:
+    m, sec = divmod(round(seconds), 60)
+    h, m = divmod(m, 60)
+    return f"{h}:{m:02d}:{sec:02d}" if h else f"{m}:{sec:02d}"
 
 
 class LedgerWatcher:
@@ -55,6 +74,14 @@ class LedgerWatcher:
         self._stop.set()
         self._thread.join(timeout=5)
 
+    def wait_until_finished(self) -> None:
+        """Block until the ledger shows the plan done (every design recorded and scored)."""
+        while True:
+            s = self._read()
+            if s is not None and s["designs_total"] >= s["designs_planned"] and not s["designs_pending"]:
+                return
+            self._stop.wait(self.interval_s)
+
     def _read(self) -> dict[str, Any] | None:
         try:
             with Ledger.open(ledger_path(self.directory), readonly=True) as ledger:
@@ -74,7 +101,7 @@ class LedgerWatcher:
             stopping = self._stop.is_set()
             s = self._read()
             if s is not None and s["cases_total"]:
-                line = describe(s)
+                line = describe(s, self.config.slots)
                 if line != last:
                     print(line, file=self.stream, flush=True)
                     last = line
@@ -95,8 +122,10 @@ class LedgerWatcher:
                 if s is not None:
                     best = s["best"]
                     best_text = "" if best is None else f"best design {best['design']}: {best['objective']:.6g}" + ("" if best["feasible"] else " (infeasible)")
+                    eta = eta_s(s, self.config.slots)
                     bar.update(cases, total=max(s["cases_total"], self.target_cases), completed=s["cases_done"] + s["cases_failed"],
-                               detail=f"{s['cases_running']} running, {s['cases_failed']} failed")
+                               detail=f"{s['cases_running']} running, {s['cases_planned']} queued, {s['cases_failed']} failed"
+                               + ("" if eta is None else f", ETA {_clock(eta)}"))
                     bar.update(designs, completed=s["designs_done"] + s["designs_failed"], detail=best_text)
                 if stopping:
                     return

@@ -40,6 +40,7 @@ def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
         "budget_designs": config.budget.designs,
         "budget_cases": config.budget.cases,
         "designs_planned": config.target_designs(),
+        "n_conditions": len(config.condition_list()),
         "designs_total": len(designs),
         "designs_done": sum(d.status == "done" for d in designs),
         "designs_failed": sum(d.status == "failed" for d in designs),
@@ -85,7 +86,10 @@ def _attempt_summary(ledger: Ledger) -> dict[str, Any]:
     ended: dict[str, int] = {}
     for a in attempts:
         ended[a["state"]] = ended.get(a["state"], 0) + 1
+    took = [a["ended_at"] - a["started_at"] for a in attempts if a["state"] == "done" and a["ended_at"]]
     return {
+        "mean_case_s": sum(took) / len(took) if took else None,
+        "solver_hours": sum(a["ended_at"] - a["started_at"] for a in attempts if a["ended_at"]) / 3600.0,
         "attempts_total": len(attempts),
         "attempts_by_end": ended,
         "retries": sum(a["state"] == "failed" and a["number"] < last[a["case_id"]] for a in attempts),

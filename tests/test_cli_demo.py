@@ -87,6 +87,15 @@ def test_status_json_reports_the_counts(demo) -> None:
 
 
 @pytest.mark.parametrize("suffix", [".csv", ".parquet"])
+def test_status_watch_follows_until_the_campaign_is_done(demo) -> None:
+    directory, _, env = demo
+    result = sortie("status", str(directory), "--watch", env=env, cwd=directory.parent)
+    assert result.returncode == 0, result.stderr
+    lines = result.stdout.splitlines()
+    assert any(line.startswith("cases ") and "queued" in line for line in lines)
+    assert "\x1b" not in result.stdout, "plain lines when not on a terminal"
+
+
 def test_export_writes_one_row_per_design(demo, suffix: str) -> None:
     directory, _, env = demo
     out = directory.parent / f"designs{suffix}"
