@@ -244,21 +244,26 @@ def status(
 def export(
     directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
     to: Annotated[Path, typer.Option("--to", help="Output file: .csv or .parquet.")],
+    what: Annotated[str, typer.Option("--what", help="designs (one row per design) or cases (one row per design and condition).")] = "designs",
 ) -> None:
-    """Write one row per design (parameters, objective, constraints, feasible, status).
+    """Write one row per design (parameters, objective, constraints, feasible, status) or per case.
 
     Example: sortie export campaigns/sled-aftbody --to designs.parquet
     """
     from sortie import campaign
+    from sortie.api import case_table
     from sortie.ledger import Ledger, ledger_path
     from sortie.status import design_table
 
     suffix = to.suffix.lower()
     if suffix not in (".csv", ".parquet"):
         raise ConfigError([f"--to: {to} must end in .csv or .parquet"])
+    tables = {"designs": design_table, "cases": case_table}
+    if what not in tables:
+        raise ConfigError([f"--what: {what!r} is not a table; allowed: designs, cases"])
     cfg, _ = campaign.load(directory)
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
-        table = design_table(ledger, cfg)
+        table = tables[what](ledger, cfg)
     try:
         to.parent.mkdir(parents=True, exist_ok=True)
         if suffix == ".csv":
@@ -267,7 +272,23 @@ def export(
             table.to_parquet(to, index=False)
     except OSError as err:
         raise ConfigError([f"--to: {to} cannot be written ({err.strerror or err})"]) from None
-    typer.echo(f"wrote {len(table)} designs to {to}")
+    typer.echo(f"wrote {len(table)} {what} to {to}")
+
+
+@app.command()
+def report(
+    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
+    out: Annotated[Path | None, typer.Option("--out", help="Report folder [default: DIR/report].")] = None,
+) -> None:
+    """Write an HTML report with its figures (PNG) from the ledger; works while the campaign runs.
+
+    Example: sortie report campaigns/sled-aftbody --out review/sled
+    """
+    from sortie.report import write_report
+
+    index = write_report(directory, out)
+    typer.echo(f"wrote {index}")
+    typer.echo(CAUTION)
 
 
 def main() -> None:

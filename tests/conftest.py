@@ -10,6 +10,8 @@ from typing import Any
 import pytest
 import yaml
 
+pytest_plugins = ["tests.slurm_support"]  # Slurm fixtures for every test file (skip or fail clearly)
+
 ROOT = Path(__file__).resolve().parents[1]
 FIXTURES = Path(__file__).resolve().parent / "fixtures"
 DEMO_CONFIG = ROOT / "configs" / "sled-aftbody.yaml"
@@ -37,6 +39,29 @@ def prefect_api() -> Iterator[None]:
         PREFECT_API_URL: None,
     }):
         yield
+
+
+@pytest.fixture(scope="session")
+def cli_env(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, str]]:
+    """Environment for ``sortie`` subprocesses sharing one real Prefect API server, as a site's own
+    server would be shared; each run then skips the ~10 s of starting its own."""
+    import os
+
+    from sortie.flows.server import start_local_api
+
+    home = tmp_path_factory.mktemp("prefect-server")
+    saved = {k: os.environ.get(k) for k in ("PREFECT_API_URL", "PREFECT_HOME")}
+    os.environ["PREFECT_HOME"] = str(home)
+    os.environ.pop("PREFECT_API_URL", None)
+    try:
+        url = start_local_api(home)  # stopped at exit, and by the kernel if pytest dies
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+    yield {**os.environ, "PREFECT_HOME": str(home), "PREFECT_API_URL": url, "PYTHONUNBUFFERED": "1"}
 
 
 def branin_config(**changes: Any) -> dict[str, Any]:

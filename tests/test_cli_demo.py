@@ -86,7 +86,6 @@ def test_status_json_reports_the_counts(demo) -> None:
     assert status["best"]["feasible"] is True
 
 
-@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
 def test_status_watch_follows_until_the_campaign_is_done(demo) -> None:
     directory, _, env = demo
     result = sortie("status", str(directory), "--watch", env=env, cwd=directory.parent)
@@ -96,6 +95,7 @@ def test_status_watch_follows_until_the_campaign_is_done(demo) -> None:
     assert "\x1b" not in result.stdout, "plain lines when not on a terminal"
 
 
+@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
 def test_export_writes_one_row_per_design(demo, suffix: str) -> None:
     directory, _, env = demo
     out = directory.parent / f"designs{suffix}"

@@ -13,7 +13,6 @@ import signal
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -26,23 +25,9 @@ pytestmark = pytest.mark.slow
 BUDGET = 18
 
 
-@pytest.fixture(scope="module")
-def env(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, str]]:
-    from sortie.flows.server import start_local_api
-
-    home = tmp_path_factory.mktemp("prefect")
-    saved = {k: os.environ.get(k) for k in ("PREFECT_API_URL", "PREFECT_HOME")}
-    os.environ["PREFECT_HOME"] = str(home)
-    os.environ.pop("PREFECT_API_URL", None)
-    try:
-        url = start_local_api(home)  # stopped at exit, and by the kernel if pytest dies
-    finally:
-        for k, v in saved.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
-    yield {**os.environ, "PREFECT_HOME": str(home), "PREFECT_API_URL": url}
+@pytest.fixture
+def env(cli_env: dict[str, str]) -> dict[str, str]:
+    return cli_env
 
 
 def _config(tmp_path: Path, **changes: object) -> Path:
