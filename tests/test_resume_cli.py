@@ -69,7 +69,7 @@ def _snapshot(directory: Path) -> dict[int, tuple[dict, int]]:
 
 def test_kill_9_at_ten_moments_then_resume_loses_and_repeats_nothing(tmp_path: Path, env: dict[str, str]) -> None:
     log = tmp_path / "mock.log"
-    run_env = {**env, "SORTIE_MOCK_RUN_TIME_S": "0.3", "SORTIE_MOCK_LOG": str(log), "PYTHONUNBUFFERED": "1"}
+    run_env = {**env, "SORTIE_MOCK_RUN_TIME_S": "0.2", "SORTIE_MOCK_LOG": str(log), "PYTHONUNBUFFERED": "1"}
     config = _config(tmp_path)
     directory = tmp_path / "camp"
     total_cases = BUDGET * 2
