@@ -22,14 +22,12 @@ from pathlib import Path
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState
+from sortie.adapters.files import STDERR, STDOUT, folder_problems, last_line, read_case_quantities, which_program
 from sortie.adapters.template import render_folder, render_text
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
-from sortie.quantities import QuantityNotFound, read_quantity
 
-STDOUT = "solver.stdout"
-STDERR = "solver.stderr"
 JOB_FILE = ".sortie-job"  # the solver's process group and start time, for a later orchestrator
 EXIT_FILE = ".solver-exit"  # the solver's exit status, written by the wrapper shell when it ends
 _WRAPPER = f'"$@"; status=$?; echo $status > {EXIT_FILE}; exit $status'
@@ -85,15 +83,9 @@ class CommandAdapter:
     @classmethod
     def check(cls, options: CommandOptions, quantities: Mapping[str, QuantitySpec], base_dir: Path) -> list[str]:
         """Set-up problems found without running anything."""
-        problems = []
-        template = (base_dir / options.template).resolve()
-        if not template.is_dir():
-            problems.append(f"solver.template: {template} is not a folder; give the folder holding the solver's input files (relative to the config file)")
-        if "{{" not in options.command[0] and _which(options.command[0], template) is None:
+        problems = folder_problems("command", options.template, quantities, base_dir)
+        if "{{" not in options.command[0] and which_program(options.command[0], (base_dir / options.template).resolve()) is None:
             problems.append(f"solver.command: program {options.command[0]!r} is not found on PATH or in {Path(sys.executable).parent}; give an installed program or a path")
-        for name, spec in quantities.items():
-            if spec.file is None:
-                problems.append(f"quantities.{name}: the command adapter reads quantities from files; give 'file' and one of pattern, key, column, json_path")
         return problems
 
     def start(self, case: CaseSpec) -> JobHandle:
@@ -104,7 +96,7 @@ class CommandAdapter:
         context = case.context()
         render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
         argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
-        program = _which(argv[0], workdir)
+        program = which_program(argv[0], workdir)
         if program is None:
             raise AdapterError(f"solver.command: program {argv[0]!r} is not found on PATH; give an installed program or a path")
         env = {**os.environ, **self.options.env}
@@ -156,18 +148,8 @@ class CommandAdapter:
             return CaseOutcome.failed("transient", f"the solver ended while no orchestrator watched it and left no exit status in {workdir / EXIT_FILE}")
         if code != 0:
             how = f"was killed by signal {code - 128}" if code > 128 else f"exited with code {code}"
-            return CaseOutcome.failed("solver", f"the solver {how}{_last_line(stderr)}; see {stderr}")
-        quantities: dict[str, float] = {}
-        for name, spec in self.quantities.items():
-            try:
-                raw = read_quantity(workdir, name, spec)
-            except QuantityNotFound as err:
-                return CaseOutcome.failed("output", f"{err}; see {workdir / STDOUT}")
-            outcome = check_quantities({name: raw}, [name], f"output file {workdir / str(spec.file)}")
-            if not outcome.ok:
-                return outcome
-            quantities.update(outcome.quantities)
-        return CaseOutcome(quantities=quantities)
+            return CaseOutcome.failed("solver", f"the solver {how}{last_line(stderr)}; see {stderr}")
+        return read_case_quantities(workdir, self.quantities)
 
     def cancel(self, handle: JobHandle) -> None:
         run = self._running.pop(handle.case_id, None)
@@ -268,20 +250,3 @@ def _group_alive(pgid: int) -> bool:
             if int(fields[2]) == pgid and fields[0] != "Z":
                 return True
     return False
-
-
-def _which(program: str, folder: Path) -> str | None:
-    """Find ``program``: a path relative to the case folder (a run script shipped in the template),
-    else on PATH, else beside this Python (a venv's console scripts)."""
-    if os.sep in program:
-        path = Path(folder) / program
-        return str(path) if os.access(path, os.X_OK) else None
-    return shutil.which(program) or shutil.which(program, path=str(Path(sys.executable).parent))
-
-
-def _last_line(path: Path) -> str:
-    try:
-        lines = [ln.strip() for ln in path.read_text(errors="replace").splitlines() if ln.strip()]
-    except OSError:
-        return ""
-    return f" ({lines[-1][:200]})" if lines else ""

@@ -46,12 +46,11 @@ from typing import ClassVar
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
-from sortie.adapters.command import STDERR, STDOUT, _last_line, _which
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState
+from sortie.adapters.files import STDERR, STDOUT, folder_problems, last_line, read_case_quantities, which_program
 from sortie.adapters.template import render_folder, render_text
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
-from sortie.quantities import QuantityNotFound, read_quantity
 
 log = logging.getLogger(__name__)
 
@@ -298,7 +297,7 @@ def end_outcome(job: SlurmJob, workdir: Path, options: SlurmOptions) -> CaseOutc
             what = f"was killed by signal {job.signal}"
         else:
             what = f"exited with code {job.exit_code}" if job.exit_code is not None else "failed"
-        return CaseOutcome.failed(failure_class, f"the Slurm job {job.job_id} {what}{_last_line(stderr)}; see {stderr}")
+        return CaseOutcome.failed(failure_class, f"the Slurm job {job.job_id} {what}{last_line(stderr)}; see {stderr}")
     asked = f" (memory={options.memory})" if options.memory else ""
     what, see = {
         "OUT_OF_MEMORY": (f"ran out of memory{asked}; raise solver.memory", stderr),
@@ -354,19 +353,14 @@ class SlurmAdapter:
     @classmethod
     def check(cls, options: SlurmOptions, quantities: Mapping[str, QuantitySpec], base_dir: Path) -> list[str]:
         """Set-up problems: Slurm's tools missing, template missing, resources the cluster refuses."""
-        problems = []
+        problems = folder_problems("slurm", options.template, quantities, base_dir)
         template = (base_dir / options.template).resolve()
-        if not template.is_dir():
-            problems.append(f"solver.template: {template} is not a folder; give the folder holding the solver's input files (relative to the config file)")
         missing = [tool for tool in SLURM_TOOLS if shutil.which(tool) is None]
         if missing:
             problems.append(f"solver.adapter: Slurm's {', '.join(missing)} not found on PATH; run sortie where Slurm's client commands work (a login node) or use adapter 'command'")
         program = options.command[0]
-        if not options.setup and "{{" not in program and _which(program, template) is None:
+        if not options.setup and "{{" not in program and which_program(program, template) is None:
             problems.append(f"solver.command: program {program!r} is not found on PATH or beside this Python; give an installed program, a path, or setup lines (module load) that provide it")
-        for name, spec in quantities.items():
-            if spec.file is None:
-                problems.append(f"quantities.{name}: the slurm adapter reads quantities from files; give 'file' and one of pattern, key, column, json_path")
         if not missing:
             refused = cls._test_resources(options)
             if refused:
@@ -436,7 +430,7 @@ class SlurmAdapter:
         failed = end_outcome(job, workdir, self.options)
         if failed is not None:
             return failed
-        return self._read_quantities(workdir)
+        return read_case_quantities(workdir, self.quantities)
 
     def cancel(self, handle: JobHandle) -> None:
         """``scancel`` the job; its end (CANCELLED) is seen by the next poll."""
@@ -498,7 +492,7 @@ class SlurmAdapter:
         """
         context = case.context()
         argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
-        program = _which(argv[0], workdir)
+        program = which_program(argv[0], workdir)
         if program is None and not self.options.setup:
             raise AdapterError(f"solver.command: program {argv[0]!r} is not found on PATH; give an installed program, a path, or setup lines that provide it")
         argv[0] = program or argv[0]  # else found on the compute node after the set-up lines
@@ -600,20 +594,6 @@ class SlurmAdapter:
         if result.returncode != 0:
             raise AdapterError(f"cannot read the Slurm queue ({_first_error(result.stderr)}); try again when the Slurm controller answers, so that no job is submitted twice")
         return parse_squeue(result.stdout)
-
-    def _read_quantities(self, workdir: Path) -> CaseOutcome:
-        """Quantities from the case folder, exactly as the command adapter reads them."""
-        quantities: dict[str, float] = {}
-        for name, spec in self.quantities.items():
-            try:
-                raw = read_quantity(workdir, name, spec)
-            except QuantityNotFound as err:
-                return CaseOutcome.failed("output", f"{err}; see {workdir / STDOUT}")
-            outcome = check_quantities({name: raw}, [name], f"output file {workdir / str(spec.file)}")
-            if not outcome.ok:
-                return outcome
-            quantities.update(outcome.quantities)
-        return CaseOutcome(quantities=quantities)
 
 
 # --------------------------------------------------------------------------- helpers

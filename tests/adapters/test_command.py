@@ -443,7 +443,7 @@ def test_check_solver_lists_every_problem_together(tmp_path):
     problems = registry.check_solver({"adapter": "command", "template": "missing",
                                       "command": ["sortie-no-such-solver-program"]}, tmp_path,
                                      {"cd": {}})
-    assert [p.split(":")[0] for p in problems] == ["solver.template", "solver.command", "quantities.cd"]
+    assert sorted(p.split(":")[0] for p in problems) == ["quantities.cd", "solver.command", "solver.template"]
 
 
 def test_check_solver_of_a_good_section_is_clean_and_builds(tmp_path):
