@@ -19,6 +19,7 @@ demo: $(VENV)/.installed
 	$(BIN)/sortie check configs/sled-aftbody.yaml
 	rm -rf $(DEMO_DIR)  # the demo always starts afresh
 	$(BIN)/sortie run configs/sled-aftbody.yaml --dir $(DEMO_DIR)
+	$(BIN)/sortie report $(DEMO_DIR)
 
 test: $(VENV)/.installed
 	$(BIN)/ruff check .

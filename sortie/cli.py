@@ -171,7 +171,7 @@ def _print_result(directory: Path, cfg) -> None:
     for line in _stage_lines(s):
         typer.echo(line)
     typer.echo(f"results: ledger {ledger_path(directory)}, case folders {directory / 'cases'}")
-    typer.echo(f"next: sortie status {directory}   |   sortie export {directory} --to designs.csv")
+    typer.echo(f"next: sortie report {directory}   |   sortie status {directory}   |   sortie export {directory} --to designs.csv")
     typer.echo(CAUTION)
 
 
