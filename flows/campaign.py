@@ -38,7 +38,7 @@ from sortie.adapters.registry import build_adapter  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
 from sortie.errors import CampaignError, SortieError  # noqa: E402
 from sortie.goal import Goal  # noqa: E402
-from sortie.infill import MIN_POINTS, History, InfillSettings, optimize_surface, propose_infill  # noqa: E402
+from sortie.infill import MIN_POINTS, History, InfillSettings, fit_models, optimize_surface, propose_infill  # noqa: E402
 from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
 from sortie.plan import first_designs, initial_designs  # noqa: E402
 from sortie.space import DesignSpace  # noqa: E402
@@ -160,6 +160,23 @@ class _Conductor:
                                 "plan cannot go on; see the failures with 'sortie status'")
         if self.stop_reason is not None:
             raise CampaignError(self.stop_reason)
+        self.record_indices()
+
+    def record_indices(self) -> None:
+        """At the end of the plan, Sobol' indices of the goal surrogates over the parameters still free."""
+        designs = self.ledger.designs()
+        if self.ledger.analyses("sobol") and self.ledger.analyses("sobol")[-1]["data"]["n_points"] == len(designs):
+            return  # already recorded for exactly these designs (a resume of a finished campaign)
+        self.space = self._active_space()
+        history = self.history(designs)
+        if int(history.usable().sum()) < 2 * (history.n_dims + 1):
+            return  # too few designs for indices worth showing
+        models = fit_models(history, InfillSettings(models=("gp",)), self._seed(designs))
+        if models is None:
+            return
+        data = stages.surrogate_indices(models.objective, models.margins, self.goal, [p.name for p in self.space.free],
+                                        n_points=len(designs), seed=self.config.campaign.seed)
+        self.ledger.add_analysis("sobol", data)
 
     def reattach(self) -> None:
         """Pick up the cases a previous run left in flight: wait for live jobs, run the rest again."""

@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from sortie.screening import morris_effects, select_parameters, sweep_effects
+from sortie.sensitivity import surrogate_sobol_indices
 from sortie.space import DesignSpace
 
 if TYPE_CHECKING:
@@ -73,6 +74,22 @@ def reselect(data: dict[str, Any], select: SelectSpec, *, importance: Any = None
                                keep=select.keep, output_names=data["outputs"], measure=measure)
     return {**data, "selected": list(chosen.selected), "fixed": list(chosen.fixed), "reasons": dict(chosen.reasons),
             "score": chosen.scores, "rule": chosen.rule, "select": select.model_dump()}
+
+
+def surrogate_indices(objective: Any, margins: Sequence[Any], goal: Goal, names: Sequence[str], *, n_points: int,
+                      seed: int) -> dict[str, Any]:
+    """Sobol' first-order and total indices of the fitted goal surrogates, with bootstrap intervals.
+
+    A second opinion beside screening, computed on the surrogates rather than the solver (so it
+    costs no runs and is only as good as the models' leave-one-out error says).
+    """
+    models = {"objective": objective, **{c.source: m for c, m in zip(goal.constraints, margins, strict=True)}}
+    result = surrogate_sobol_indices(models, len(names), n_base=1024, seed=seed, n_resamples=200, names=list(names))
+    return {"parameters": list(result.names), "outputs": list(result.output_names), "first_order": result.first_order,
+            "total_order": result.total_order, "first_order_low": result.first_order_low,
+            "first_order_high": result.first_order_high, "total_order_low": result.total_order_low,
+            "total_order_high": result.total_order_high, "confidence_level": result.confidence_level,
+            "n_points": n_points}
 
 
 def confirmation_check(design: DesignRow, goal: Goal) -> dict[str, Any]:

@@ -75,7 +75,12 @@ def test_infill_and_confirmation_after_screening(tmp_path: Path) -> None:
         designs = ledger.designs()
         (screening,) = ledger.analyses("screening")
         checks = ledger.analyses("confirmation")
+        (sobol,) = ledger.analyses("sobol")
     kept = screening["data"]["selected"]
+    # the second opinion on the surrogates covers the parameters still free, for every goal value
+    assert sobol["data"]["parameters"] == kept and sobol["data"]["outputs"] == ["objective", *config["goal"]["subject_to"]]
+    assert all(lo <= hi for row_lo, row_hi in zip(sobol["data"]["total_order_low"], sobol["data"]["total_order_high"],
+                                                  strict=True) for lo, hi in zip(row_lo, row_hi, strict=True))
     assert len(kept) == 3
     stages = [d.stage for d in designs]
     assert stages.count("infill") == 4 and stages[-1] == "confirmation"
