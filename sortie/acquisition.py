@@ -59,6 +59,7 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 from sklearn.utils.validation import check_is_fitted
+from threadpoolctl import threadpool_limits
 
 __all__ = [
     "Proposal",
@@ -462,7 +463,9 @@ class SuccessModel(BaseEstimator):
             kernel, alpha=1e-8, normalize_y=True, n_restarts_optimizer=n_restarts, random_state=self.random_state
         )
         y = np.where(labels, 1.0, -1.0)
-        with warnings.catch_warnings(record=True) as caught:
+        # One BLAS thread: small matrices gain nothing from threads, and on a machine whose cores
+        # run solver cases the threads' contention made fits orders of magnitude slower.
+        with warnings.catch_warnings(record=True) as caught, threadpool_limits(limits=1, user_api="blas"):
             warnings.simplefilter("always")
             gp.fit(X, y)
         messages = []
@@ -641,8 +644,9 @@ def _far_enough(X: np.ndarray, exclude: np.ndarray | None, min_distance: float) 
     return keep
 
 
-def _polish(score: _CountingScore, x0: np.ndarray, max_iter: int) -> tuple[np.ndarray, float]:
-    """Run L-BFGS-B on ``-score`` from ``x0``; return the final point and its score.
+def _polish(score: _CountingScore, x0: np.ndarray, max_iter: int, lower: np.ndarray,
+            upper: np.ndarray) -> tuple[np.ndarray, float]:
+    """Run L-BFGS-B on ``-score`` from ``x0`` inside ``[lower, upper]``; return the final point and its score.
 
     The forward-difference gradient is computed here, with the point and its ``n_dims`` shifted
     copies scored in one call: a GP predict on d+1 rows costs about the same as on one row.
@@ -651,9 +655,9 @@ def _polish(score: _CountingScore, x0: np.ndarray, max_iter: int) -> tuple[np.nd
     shifts = np.eye(n_dims) * _FD_STEP
 
     def objective(x: np.ndarray) -> tuple[float, np.ndarray]:
-        x = np.clip(x, 0.0, 1.0)
-        # Step inwards at the upper bound so every stencil point stays in the cube.
-        signs = np.where(x + _FD_STEP <= 1.0, 1.0, -1.0)
+        x = np.clip(x, lower, upper)
+        # Step inwards at the upper bound so every stencil point stays in the box.
+        signs = np.where(x + _FD_STEP <= upper, 1.0, -1.0)
         stencil = np.vstack([x, x + shifts * signs[:, None]])
         values = -score(stencil)
         f0 = values[0]
@@ -665,9 +669,9 @@ def _polish(score: _CountingScore, x0: np.ndarray, max_iter: int) -> tuple[np.nd
         return float(f0), grad
 
     result = minimize(
-        objective, x0, jac=True, method="L-BFGS-B", bounds=[(0.0, 1.0)] * n_dims, options={"maxiter": max_iter}
+        objective, x0, jac=True, method="L-BFGS-B", bounds=list(zip(lower, upper, strict=True)), options={"maxiter": max_iter}
     )
-    x = np.clip(result.x, 0.0, 1.0)
+    x = np.clip(result.x, lower, upper)
     return x, float(score(x[None, :])[0])
 
 
@@ -681,6 +685,8 @@ def maximize(
     exclude: np.ndarray | None = None,
     min_distance: float = 1e-3,
     max_iter: int = 50,
+    lower: np.ndarray | None = None,
+    upper: np.ndarray | None = None,
 ) -> Proposal:
     """Find the unit-cube point with the highest log-score, away from known designs.
 
@@ -711,6 +717,9 @@ def maximize(
         Smallest allowed Euclidean distance, in the unit cube, to every row of ``exclude``.
     max_iter : int, default 50
         Iteration limit of each L-BFGS-B run.
+    lower, upper : ndarray of shape (n_dims,), optional
+        A box inside the unit cube to search instead of the whole cube (default 0 and 1), for a
+        local step around the best design. Candidates are Sobol' points of the box.
 
     Returns
     -------
@@ -753,11 +762,16 @@ def maximize(
         if exclude.ndim != 2 or exclude.shape[1] != n_dims:
             raise ValueError(f"exclude must have shape (n_excluded, {n_dims}), got {exclude.shape}.")
 
+    lower = np.zeros(n_dims) if lower is None else np.asarray(lower, dtype=float)
+    upper = np.ones(n_dims) if upper is None else np.asarray(upper, dtype=float)
+    if lower.shape != (n_dims,) or upper.shape != (n_dims,) or not np.all((lower >= 0) & (lower < upper) & (upper <= 1)):
+        raise ValueError(f"lower and upper must have shape ({n_dims},) with 0 <= lower < upper <= 1.")
+
     score = _CountingScore(log_score)
 
     # (1) Candidates: a scrambled Sobol' net of 2^m >= n_candidates points, scored in chunks.
     m = (n_candidates - 1).bit_length()
-    candidates = qmc.Sobol(n_dims, rng=seed).random_base2(m)
+    candidates = lower + (upper - lower) * qmc.Sobol(n_dims, rng=seed).random_base2(m)
     cand_scores = np.concatenate(
         [score(candidates[i : i + _CHUNK_ROWS]) for i in range(0, candidates.shape[0], _CHUNK_ROWS)]
     )
@@ -777,7 +791,7 @@ def maximize(
     for idx in order[:n_starts]:
         if not np.isfinite(cand_scores[idx]):
             continue
-        polished.append(_polish(score, candidates[idx], max_iter))
+        polished.append(_polish(score, candidates[idx], max_iter, lower, upper))
 
     # (4) Best polished point that keeps its distance, unless a raw candidate beats it.
     if polished:

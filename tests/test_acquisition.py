@@ -324,6 +324,22 @@ def test_maximize_finds_a_peak_on_the_boundary():
     np.testing.assert_allclose(proposal.x, [1.0, 0.4], atol=1e-3)
 
 
+def test_maximize_in_a_box_stays_inside_it_and_finds_the_box_optimum():
+    # The bump's peak (CENTRE) lies outside the box: the best point of the box is CENTRE clipped to it.
+    lower, upper = np.array([0.5, 0.1, 0.1]), np.array([0.7, 0.3, 0.9])
+    seen = []
+
+    def recording(X):
+        seen.append(X.copy())
+        return log_bump(X)
+
+    proposal = maximize(recording, 3, seed=2, lower=lower, upper=upper)
+    assert all(np.all((rows >= lower) & (rows <= upper)) for rows in seen)
+    np.testing.assert_allclose(proposal.x, np.clip(CENTRE, lower, upper), atol=1e-4)
+    with pytest.raises(ValueError, match="0 <= lower < upper <= 1"):
+        maximize(log_bump, 3, seed=0, lower=upper, upper=lower)
+
+
 def test_maximize_is_deterministic_for_a_seed():
     a = maximize(log_bump, 3, seed=11)
     b = maximize(log_bump, 3, seed=11)

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from sortie.infill import History, InfillSettings, fit_models, optimize_surface, propose_infill
+from sortie.infill import History, InfillSettings, Step, fit_models, optimize_surface, propose_infill
 
 FAST = InfillSettings(models=("gp",), candidates=256, restarts=3)
 
@@ -33,7 +33,7 @@ def test_too_few_successful_designs_give_no_proposal() -> None:
 def test_proposal_moves_towards_the_minimum_of_a_bowl() -> None:
     rng = np.random.default_rng(1)
     X = rng.random((12, 2))
-    proposal = propose_infill(_history(X, _quadratic(X)), InfillSettings(models=("gp",), std_cycle=(0.05,)), seed=3)
+    proposal = propose_infill(_history(X, _quadratic(X)), InfillSettings(models=("gp",), cycle=(Step(0.05),)), seed=3)
     assert proposal is not None
     assert np.linalg.norm(proposal.x - [0.3, 0.7]) < np.min(np.linalg.norm(X - [0.3, 0.7], axis=1))
     assert proposal.incumbent == pytest.approx(_quadratic(X).min())
@@ -81,8 +81,61 @@ def test_warm_kernels_are_returned_and_reused() -> None:
     models = fit_models(_history(X2, _quadratic(X2)), FAST, seed=2, warm=first.kernels)
     assert models is not None
     params = models.objective.get_params()
-    assert params["optimize"] is False  # warm refit: the previous kernel, no hyper-parameter search
-    assert np.array_equal(models.objective.kernel_.theta, first.kernels["objective"].theta)
+    # In between full searches: a local search from the previous kernel, no random restarts.
+    assert params["n_restarts"] == 0
+    assert np.array_equal(params["warm_kernel"].theta, first.kernels["objective"].theta)
+    full = fit_models(_history(X[:5], _quadratic(X[:5])), FAST, seed=2, warm=first.kernels)  # 5 designs: restarts too
+    assert full is not None and full.objective.get_params()["n_restarts"] == 2
+
+
+def test_objective_for_infill_is_the_gp_even_when_the_quadratic_wins_leave_one_out() -> None:
+    # An exact quadratic: the quadratic surface has zero PRESS and wins the LOO ranking, but its
+    # standard error is not an uncertainty EI can use (fit_models docstring), so infill uses the GP.
+    rng = np.random.default_rng(8)
+    X = rng.random((15, 2))
+    history = _history(X, _quadratic(X))
+    ranked = fit_models(history, InfillSettings(models=("gp", "quadratic")), seed=0)
+    assert ranked is not None and ranked.chosen == {"objective": "quadratic"}
+    proposal = propose_infill(history, InfillSettings(models=("gp", "quadratic"), candidates=256), seed=0)
+    assert proposal is not None and proposal.chosen == {"objective": "gp"}
+    assert {s.name for s in proposal.model_scores["objective"]} == {"gp", "quadratic"}  # the ranking is still recorded
+
+
+def test_a_design_that_improved_the_best_is_refined_locally() -> None:
+    rng = np.random.default_rng(9)
+    X = rng.random((10, 2))
+    y = _quadratic(X)
+    newest_best = np.vstack([np.delete(X, y.argmin(), axis=0), X[y.argmin()]])  # the best design last
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=3, cycle=(Step(1.0),))
+    proposal = propose_infill(_history(newest_best, _quadratic(newest_best)), settings, seed=0)
+    assert proposal is not None and proposal.local and proposal.reason().startswith("near the best design")
+    assert np.all(np.abs(proposal.x - X[y.argmin()]) <= settings.local_radius + 1e-12)
+    best_first = np.vstack([X[y.argmin()], np.delete(X, y.argmin(), axis=0)])  # same designs, best one long ago
+    proposal = propose_infill(_history(best_first, _quadratic(best_first)), settings, seed=0)
+    assert proposal is not None and not proposal.local
+
+
+def test_best_predicted_incumbent_is_the_lowest_mean_at_a_feasible_design() -> None:
+    # A noisy solver: one design came back far below what its neighbours say (a lucky draw).
+    rng = np.random.default_rng(10)
+    X = rng.random((30, 2))
+    y = _quadratic(X) + 0.01 * rng.standard_normal(30)
+    lucky = int(np.argmin(y))
+    y[lucky] -= 0.04  # four noise stds below the truth
+    margins = (X[:, :1] - 0.9)  # feasible where x0 <= 0.9
+    assert margins[lucky, 0] <= 0
+    history = _history(X, y, margins=margins)
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=2, incumbent="best-predicted")
+    proposal = propose_infill(history, settings, seed=0)
+    models = fit_models(history, settings, seed=0, for_infill=True)
+    assert proposal is not None and models is not None
+    feasible = margins[:, 0] <= 0
+    assert proposal.incumbent == pytest.approx(models.objective.predict(X[feasible]).min())
+    assert proposal.incumbent > y[feasible].min() + 0.01  # the lucky draw is not believed
+    observed = propose_infill(history, InfillSettings(models=("gp",), candidates=256, restarts=2), seed=0)
+    assert observed is not None and observed.incumbent == pytest.approx(y[feasible].min())
+    with pytest.raises(ValueError, match="incumbent must be one of best-observed, best-predicted"):
+        InfillSettings(incumbent="best-ever")
 
 
 def test_stop_rule_fires_when_improvement_is_negligible() -> None:

@@ -17,6 +17,7 @@ from sortie.surrogate import (
     ModelScore,
     QuadraticSurface,
     RadialBasisSurrogate,
+    _neg_log_posterior,
     choose_surrogate,
     make_surrogate,
 )
@@ -257,6 +258,57 @@ def test_gp_retries_a_failed_cholesky_with_more_jitter(monkeypatch):
         GaussianProcessSurrogate(n_restarts=0).fit(X, _smooth(X))
 
 
+@pytest.mark.parametrize("noise", [True, False])
+def test_gp_likelihood_and_gradient_equal_scikit_learns(noise):
+    # The hand-written gradient (R&W 2006 eq. 5.9, contracted without the n x n x p tensor) must
+    # equal scikit-learn's generic one for the same kernel; without a prior the value is -LML.
+    rng = np.random.default_rng(SEED)
+    X = _lhs(30, 3)
+    y = _smooth(X) + 0.3 * X[:, 2]
+    y = (y - y.mean()) / y.std()
+    kernel = GaussianProcessSurrogate(noise=noise)._initial_kernel(3, (1e-2, 1e2))
+    for _ in range(3):
+        theta = np.clip(kernel.theta + rng.normal(0.0, 0.7, kernel.theta.size), *kernel.bounds.T)
+        ref = GaussianProcessRegressor(kernel.clone_with_theta(theta), alpha=1e-8, optimizer=None).fit(X, y)
+        lml, grad = ref.log_marginal_likelihood(theta, eval_gradient=True)
+        value, mine = _neg_log_posterior(theta, X, y, 1e-8, noise, None)
+        assert value == pytest.approx(-lml, rel=1e-10)
+        np.testing.assert_allclose(mine, -grad, rtol=1e-7, atol=1e-9 * np.abs(grad).max())
+        with_prior, prior_grad = _neg_log_posterior(theta, X, y, 1e-8, noise, (0.0, 1.0))
+        assert with_prior == pytest.approx(value + 0.5 * np.sum(theta[1:4] ** 2))
+        np.testing.assert_allclose(prior_grad[1:4] - mine[1:4], theta[1:4], rtol=1e-10)
+
+
+def test_gp_length_scale_prior_stops_six_designs_from_calling_an_active_input_inactive():
+    # Branin through the baseline and a five-point LHS (the benchmark's start, seed 5): by maximum
+    # likelihood x1 looks inactive (length-scale at the bound 100) although Branin depends on it
+    # strongly; EI then crawled along one edge of the space. The weak prior keeps it in range.
+    from sortie.sampling import latin_hypercube
+
+    X = np.vstack([[0.5, 0.5], latin_hypercube(5, 2, seed=5)])
+    y = _branin_unit(X)
+    ml = GaussianProcessSurrogate(length_scale_prior=None, random_state=0).fit(X, y)
+    assert ml.length_scales_.max() > 50
+    assert any("upper bound" in w for w in ml.warnings_)
+    map_ = GaussianProcessSurrogate(random_state=0).fit(X, y)
+    assert map_.length_scales_.max() < 10
+
+
+def test_gp_fits_hyper_parameters_on_a_subset_and_conditions_on_every_design():
+    X = _lhs(80, 2)
+    y = _smooth(X)
+    gp = GaussianProcessSurrogate(max_fit_points=25, n_restarts=0, random_state=1).fit(X, y)
+    assert gp.X_.shape == (80, 2) and gp.model_.X_train_.shape == (80, 2)
+    assert np.max(np.abs(gp.predict(X) - y)) < 1e-3 * np.ptp(y)  # interpolates all 80, not only 25
+    again = GaussianProcessSurrogate(max_fit_points=25, n_restarts=0, random_state=1).fit(X, y)
+    np.testing.assert_array_equal(gp.kernel_.theta, again.kernel_.theta)
+    # hyper-parameters from 25 designs predict new points as well as the full likelihood's do
+    X_new = _lhs(200, 2, seed=SEED + 8)
+    full = GaussianProcessSurrogate(max_fit_points=None, n_restarts=0, random_state=1).fit(X, y)
+    assert np.max(np.abs(gp.predict(X_new) - _smooth(X_new))) < 0.01 * np.ptp(y)
+    assert np.max(np.abs(full.predict(X_new) - _smooth(X_new))) < 0.01 * np.ptp(y)
+
+
 # --------------------------------------------------------------------------- Kriging believer
 
 
@@ -387,3 +439,9 @@ def test_gp_rejects_invalid_settings_at_fit_time():
         GaussianProcessSurrogate(length_scale_bounds=(1.0, 0.1)).fit(X, _smooth(X))
     with pytest.raises(ValueError, match="n_restarts must be a non-negative integer"):
         GaussianProcessSurrogate(n_restarts=-1).fit(X, _smooth(X))
+    with pytest.raises(ValueError, match="max_iter must be a positive integer"):
+        GaussianProcessSurrogate(max_iter=0).fit(X, _smooth(X))
+    with pytest.raises(ValueError, match="max_fit_points must be None or an integer >= 2"):
+        GaussianProcessSurrogate(max_fit_points=1).fit(X, _smooth(X))
+    with pytest.raises(ValueError, match="length_scale_prior must have a positive median"):
+        GaussianProcessSurrogate(length_scale_prior=(1.0, -1.0)).fit(X, _smooth(X))
