@@ -348,9 +348,13 @@ class SuccessModel(BaseEstimator):
 
     Parameters
     ----------
-    floor : float, default 1e-3
+    floor : float, default 1e-6
         Smallest probability returned, in ``(0, 1]``. A score multiplied by 0 could never pull
-        the search back towards a boundary that the model has placed too conservatively.
+        the search back towards a boundary that the model has placed too conservatively. The
+        floor only acts deep inside a region the model is sure fails (near a boundary the
+        probability is well above it), so it is set low: at 1e-3 (gp.md's suggestion) a search
+        that had converged elsewhere, where EI had fallen a thousandfold, went back into the
+        failing region every other design.
     n_restarts : int, default 2
         Extra random restarts of the kernel hyperparameter fit (scikit-learn's
         ``n_restarts_optimizer``).
@@ -403,7 +407,7 @@ class SuccessModel(BaseEstimator):
     """
 
     def __init__(
-        self, *, floor: float = 1e-3, n_restarts: int = 2, random_state: int | np.random.RandomState | None = None
+        self, *, floor: float = 1e-300, n_restarts: int = 2, random_state: int | np.random.RandomState | None = None
     ) -> None:
         self.floor = floor
         self.n_restarts = n_restarts
@@ -514,13 +518,19 @@ class SuccessModel(BaseEstimator):
             return np.empty(0)
         return np.maximum(ndtr(self._latent_ratio(X)), self.floor)
 
-    def log_predict_proba(self, X: object) -> np.ndarray:
+    def log_predict_proba(self, X: object, std_factor: float = 1.0) -> np.ndarray:
         """Natural log of :meth:`predict_proba`, to add to a log acquisition score.
 
         Parameters
         ----------
         X : array-like of shape (n_points, n_dims)
             Unit-cube points.
+        std_factor : float, default 1.0
+            Scales the predictive std of the label regression, ``log Φ(μ / (std_factor σ))``. An
+            acquisition that sharpens EI by scaling the objective's std (weighted EI) must sharpen
+            this factor alike: otherwise EI ratios grow like ``exp(z² / 2 std_factor²)`` while
+            ``P(success)`` stays put, and a region the model is sure fails outscores every
+            other once the search has converged.
 
         Returns
         -------
@@ -528,11 +538,13 @@ class SuccessModel(BaseEstimator):
             ``log P(success)`` in ``[log floor, 0]``.
         """
         X = self._check_X(X)
+        if not (isinstance(std_factor, numbers.Real) and std_factor > 0):
+            raise ValueError(f"std_factor must be a positive number, got {std_factor!r}.")
         if self.constant_ is not None:
             return np.full(X.shape[0], math.log(self.constant_))
         if X.shape[0] == 0:
             return np.empty(0)
-        return np.maximum(log_ndtr(self._latent_ratio(X)), math.log(self.floor))
+        return np.maximum(log_ndtr(self._latent_ratio(X) / std_factor), math.log(self.floor))
 
 
 # --------------------------------------------------------------------------- Kriging believer

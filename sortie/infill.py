@@ -60,6 +60,9 @@ from sortie.acquisition import (
 from sortie.surrogate import GaussianProcessSurrogate, ModelScore, Surrogate, choose_surrogate
 
 MIN_POINTS = 3
+# Plain EI below this fraction of the objective's scale means the local box around the best
+# design is exhausted, and the step is taken globally (see propose_infill).
+_EXHAUSTED = 1e-6
 
 
 @dataclass(frozen=True)
@@ -344,10 +347,12 @@ def propose_infill(history: History, settings: InfillSettings, *, seed: int,
             step = next((s for s in settings.cycle if not s.local), Step())
 
         def log_score(X: np.ndarray) -> np.ndarray:
-            total = models.success.log_predict_proba(X)
+            # The step's std factor sharpens every Gaussian term alike: the step trusts the models'
+            # means more, of the constraints and the success model as much as of the objective.
+            total = models.success.log_predict_proba(X, std_factor=step.std)
             for m in margins:
                 mu, sd = m.predict(X, return_std=True)
-                total = total + log_probability_of_feasibility(mu, sd)
+                total = total + log_probability_of_feasibility(mu, step.std * sd)
             if incumbent is not None:
                 mu, sd = objective.predict(X, return_std=True)
                 total = total + log_expected_improvement(mu, step.std * sd, incumbent)
@@ -358,15 +363,24 @@ def propose_infill(history: History, settings: InfillSettings, *, seed: int,
                   "min_distance": settings.min_distance}
         local = step.local
         found = None
+        scale = max(abs(incumbent), float(np.ptp(history.objective[ok])), 1e-12) if incumbent is not None else 1.0
         if local:
-            assert best is not None
+            assert best is not None and incumbent is not None
             centre = history.X[best[1]]
             lower = np.clip(centre - settings.local_radius, 0.0, 1.0)
             upper = np.clip(centre + settings.local_radius, 0.0, 1.0)
             try:
                 found = maximize(log_score, history.n_dims, lower=lower, upper=upper, **search)
-            except ValueError:  # the box is full of designs already: search everywhere instead
-                local = False
+            except ValueError:  # the box is full of designs already
+                found = None
+            # Once the best design is polished, the box has nothing left to give (plain EI below a
+            # millionth of the objective's scale, under any solver's repeatability), and local steps
+            # only sampled its edge: on Branin every other design after convergence was wasted so.
+            if found is not None:
+                gain = expected_improvement(*objective.predict(found.x[None, :], return_std=True), incumbent)[0]
+                found = found if gain >= _EXHAUSTED * scale else None
+            if found is None:
+                local, step = False, next((s for s in settings.cycle if not s.local), Step())
         if found is None:
             found = maximize(log_score, history.n_dims, **search)
         x = found.x[None, :]
@@ -380,7 +394,6 @@ def propose_infill(history: History, settings: InfillSettings, *, seed: int,
             m_stds.append(float(ms[0]))
             pf *= float(probability_of_feasibility(*mb.predict(x, return_std=True))[0])
         ps = float(models.success.predict_proba(x)[0])
-    scale = max(abs(incumbent), float(np.ptp(history.objective[ok])), 1e-12) if incumbent is not None else 1.0
     converged = settings.stop_below is not None and incumbent is not None and ei < settings.stop_below * scale
     return InfillProposal(found.x, ei, pf, ps, incumbent,
                           Prediction(float(mu[0]), float(sd[0]), tuple(m_means), tuple(m_stds)),

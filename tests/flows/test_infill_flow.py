@@ -81,9 +81,9 @@ def test_proposals_avoid_a_region_where_the_solver_fails(tmp_path: Path) -> None
     with Ledger.open(ledger_path(directory)) as ledger:
         infill = [d for d in ledger.designs() if d.stage == "infill"]
     inside = [d.values["x1"] > 5 for d in infill]
-    assert any(inside[:10]) or sum(inside) == 0
-    # the failing band holds a third of the box and one of Branin's three minima; after the first
-    # failures the success model steers the search out of it
+    # the failing band holds a third of the box and one of Branin's three minima; once the initial
+    # design has failed there, the success model keeps the search mostly out of it
+    assert sum(inside) <= len(inside) // 6, [round(d.values["x1"], 2) for d in infill]
     assert sum(inside[-15:]) <= 2, [round(d.values["x1"], 2) for d in infill]
 
 
