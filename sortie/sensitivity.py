@@ -48,7 +48,6 @@ References
 
 from __future__ import annotations
 
-import numbers
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -56,6 +55,8 @@ from typing import Any, Protocol
 import numpy as np
 from scipy import stats
 from scipy.stats import qmc
+
+from sortie.screening import _check_int, _check_names  # one set of argument checks for both modules
 
 __all__ = [
     "AnalyticIndices",
@@ -112,21 +113,6 @@ class SobolIndices:
     n_base: int
     n_evaluations: int
     confidence_level: float
-
-
-def _check_int(name: str, value: object, minimum: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral) or value < minimum:
-        raise ValueError(f"{name} must be an integer >= {minimum}, got {value!r}.")
-    return int(value)
-
-
-def _names(kind: str, names: Sequence[str] | None, count: int, default: str) -> tuple[str, ...]:
-    if names is None:
-        return tuple(f"{default}{i}" for i in range(count))
-    names = tuple(str(n) for n in names)
-    if len(names) != count or len(set(names)) != len(names):
-        raise ValueError(f"{kind} must be {count} unique names, got {list(names)!r}.")
-    return names
 
 
 def _estimate(f_A: np.ndarray, f_B: np.ndarray, f_AB: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
@@ -205,7 +191,7 @@ def sobol_indices(
     n_resamples = _check_int("n_resamples", n_resamples, 0)
     if not 0.0 < float(confidence_level) < 1.0:
         raise ValueError(f"confidence_level must be in (0, 1), got {confidence_level!r}.")
-    names = _names("names", names, d, "x")
+    names = _check_names("names", names, d, "x")
     rng = np.random.default_rng(seed)
 
     # A and B side by side from one 2d-dimensional sequence, as scipy does; A_B^(i) is A with
@@ -223,7 +209,7 @@ def sobol_indices(
     if not np.all(np.isfinite(Y)):
         raise ValueError("func returned NaN or infinite values; Sobol' indices need a value everywhere in the cube.")
     s = Y.shape[1]
-    output_names = _names("output_names", output_names, s, "y")
+    output_names = _check_names("output_names", output_names, s, "y")
     f_A, f_B = Y[:n].T, Y[n : 2 * n].T  # (s, n)
     f_AB = Y[2 * n :].reshape(d, n, s).transpose(0, 2, 1)  # (d, s, n)
     first, total = _estimate(f_A, f_B, f_AB, n)
