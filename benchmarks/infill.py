@@ -10,8 +10,11 @@ measured by ``benchmarks.overhead``. ``ei-async4`` keeps four evaluations in fli
 random durations (uniform 0.5-1.5 time units) and proposes each new design the moment a slot
 frees, with the running designs handled by the Kriging believer, exactly as the flow does.
 
-    python -m benchmarks.infill --problem branin --seeds 10 --json benchmarks/results/infill-branin.json
+    python -m benchmarks.infill --problem branin --seeds 10 --json benchmarks/results/branin.json
     python -m benchmarks.infill --timing --json benchmarks/results/proposal-timing.json
+
+Every adaptive strategy starts from the same rule: the baseline, then a Latin hypercube of
+2d + 1 designs (``Problem.n_initial``), and the same budget as the others.
 """
 
 from __future__ import annotations

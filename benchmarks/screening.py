@@ -157,25 +157,22 @@ def run_staged(setup: Setup, seed: int) -> SpaceRun:
     spec = setup.config.plan.screening
     assert spec is not None
     space, problem = setup.space, setup.problem
+    source = setup.goal.constraints[0].source
     run = SpaceRun()
-    run.add_values(problem, space.baseline())
-    rows = [DesignRow(1, "baseline", "", space.baseline(), list(space.baseline_unit()), "", None, None, None)]
-    for design in plan.screening_designs(spec, space, seed):
+    rows: list[DesignRow] = []
+    # The flow records each screening design's planned grid point as `unit`; the effects are computed from it.
+    for design in [plan.baseline_design(space), *plan.screening_designs(spec, space, seed)]:
         run.add_values(problem, design.values)
         ok = run.succeeded[-1]
-        source = setup.goal.constraints[0].source
-        # The planned grid point is what the flow records as `unit` and what the effects are computed from.
         rows.append(DesignRow(len(rows) + 1, design.stage, design.reason, design.values, list(design.unit),
                               "done" if ok else "failed", run.objective[-1] if ok else None,
                               {source: float(run.margins[-1][0])} if ok else None, ok))
-    rows[0] = dataclasses.replace(rows[0], status="done" if run.succeeded[0] else "failed",
-                                  objective=run.objective[0], constraints={setup.goal.constraints[0].source: float(run.margins[0][0])})
     screening = stages.screen(spec, space, rows, setup.goal)
     run.selected = list(screening["selected"])
     run.screening = {"selected": screening["selected"], "reasons": screening["reasons"],
                      "score": [float(s) for s in np.asarray(screening["score"], dtype=float)]}
     if not run.selected:
-        return run  # screening found nothing to optimise; the flow stops here too
+        return run  # screening found nothing to optimise: the run ends short of the budget, and says so in its length
     reduced = space.keep_free(run.selected)
     for design in plan.initial_designs(setup.config.plan.initial, reduced, seed, full=space):
         if len(run.X) >= problem.budget:
@@ -308,6 +305,10 @@ def main() -> None:
     args = parser.parse_args()
     code = code_state()
     setup = load_setup(args.budget, args.all_initial)
+    assert setup.config.plan.screening is not None
+    n_screen = setup.config.plan.screening.n_designs(setup.space.n_dims)
+    if "staged" in args.strategies and args.budget <= 1 + n_screen:
+        parser.error(f"--budget must exceed the baseline plus the {n_screen} screening designs for staged, got {args.budget}")
     runs: dict[str, list[SpaceRun]] = {name: [] for name in args.strategies}
     for seed in range(args.seeds):  # seed-major, so a partial log already compares the strategies
         for name in args.strategies:

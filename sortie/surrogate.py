@@ -164,6 +164,8 @@ def _record(caught: Sequence[warnings.WarningMessage], into: list[str]) -> None:
 
 _SQRT5 = math.sqrt(5.0)
 _LOG_2PI = math.log(2.0 * math.pi)
+# Value returned where the kernel matrix is not positive definite: finite, so L-BFGS-B backs off.
+_WALL = 1e25
 
 
 def _neg_log_posterior(
@@ -175,8 +177,9 @@ def _neg_log_posterior(
     scikit-learn's log-parameter vector for it, ``[log C, log l_1..l_d, (log noise)]``. The value is
     Rasmussen & Williams (2006) eq. 5.8 and the gradient eq. 5.9, ``0.5 tr((a a^T - K^-1) dK/dtheta)``.
     scikit-learn builds ``dK/dtheta`` as an ``n x n x (d + 2)`` array and contracts it with an
-    einsum, which dominates a fit (125 ms of 135 ms per evaluation at n = 500, d = 10 on one
-    core). For the Matern-5/2 length-scales the trace reduces to two matrix products:
+    einsum, which dominates a fit. For the Matern-5/2 length-scales the trace reduces to two
+    matrix products (measured on one core, d = 10: 1.2 ms against scikit-learn's 11 ms at
+    n = 150, 13.5 ms against 104 ms at n = 500):
 
         dK_ij/dlog l_k = C (5/3) (1 + sqrt5 r_ij) exp(-sqrt5 r_ij) (x_ik - x_jk)^2 / l_k^2
 
@@ -202,22 +205,22 @@ def _neg_log_posterior(
     try:
         L = cholesky(K, lower=True, check_finite=False)
     except np.linalg.LinAlgError:
-        return 1e25, np.zeros_like(theta)
+        return _WALL, np.zeros_like(theta)
     a = cho_solve((L, True), y, check_finite=False)
     value = 0.5 * float(y @ a) + float(np.log(np.diag(L)).sum()) + 0.5 * n * _LOG_2PI
     K_inv, info = dpotri(L, lower=1)
     if info != 0:
-        return 1e25, np.zeros_like(theta)
+        return _WALL, np.zeros_like(theta)
     K_inv += K_inv.T  # dpotri fills the lower triangle; the upper one is still L's zeros
     K_inv[np.diag_indices(n)] *= 0.5
     W = np.outer(a, a) - K_inv
-    grad = np.empty_like(theta)
-    grad[0] = 0.5 * float(np.sum(W * K_signal))
+    lml_grad = np.empty_like(theta)  # gradient of the log marginal likelihood
+    lml_grad[0] = 0.5 * float(np.sum(W * K_signal))
     A = W * (C * (5.0 / 3.0) * (1.0 + _SQRT5 * r) * e)
-    grad[1 : 1 + d] = (U * U * A.sum(axis=1)[:, None]).sum(axis=0) - (U * (A @ U)).sum(axis=0)
+    lml_grad[1 : 1 + d] = (U * U * A.sum(axis=1)[:, None]).sum(axis=0) - (U * (A @ U)).sum(axis=0)
     if noise:
-        grad[1 + d] = 0.5 * (nugget - alpha) * float(np.trace(W))
-    value, grad = value, -grad
+        lml_grad[1 + d] = 0.5 * (nugget - alpha) * float(np.trace(W))
+    grad = -lml_grad
     if prior is not None:
         centre, spread = prior
         z = (theta[1 : 1 + d] - centre) / spread
@@ -487,7 +490,7 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
           on every design (one factorisation).
         * Restarts are drawn from the prior, not uniformly over the bounds: a start at a length-scale of
           1e-2 or 1e2 spends its iterations leaving a region the prior already rules out.
-        * The likelihood and its gradient are computed by :func:`_neg_log_posterior`, about 5x
+        * The likelihood and its gradient are computed by :func:`_neg_log_posterior`, about 8x
           faster than scikit-learn's generic kernel gradient for this kernel.
         """
         rng = np.random.default_rng(self.random_state if not isinstance(self.random_state, np.random.RandomState)

@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 import pytest
-from scipy.special import ndtr
+from scipy.special import log_ndtr, ndtr
 from scipy.stats import norm, qmc
 from sklearn.base import clone
 from sklearn.exceptions import NotFittedError
@@ -273,6 +273,19 @@ def test_success_model_respects_the_floor_and_its_log_agrees():
     assert p.min() == 0.05 and p.max() <= 1.0  # deep in the failure region the floor binds
     # log_ndtr is the more accurate side where P is near 1, hence the tolerance.
     np.testing.assert_allclose(model.log_predict_proba(grid), np.log(p), rtol=1e-9, atol=1e-15)
+
+
+def test_success_model_std_factor_sharpens_the_log_probability(band_model):
+    # Weighted EI scales the objective's std; the success term must be sharpened alike (see
+    # log_predict_proba), i.e. log Phi(ratio / factor), the floor still binding.
+    X = np.array([[0.5, 0.5], [0.62, 0.5], [0.9, 0.5]])
+    plain = band_model.log_predict_proba(X)
+    sharp = band_model.log_predict_proba(X, std_factor=0.3)
+    ratio = band_model._latent_ratio(X)
+    np.testing.assert_allclose(sharp, np.maximum(log_ndtr(ratio / 0.3), math.log(band_model.floor)))
+    assert np.all(sharp[ratio < 0] <= plain[ratio < 0]) and np.all(sharp[ratio > 0] >= plain[ratio > 0])
+    with pytest.raises(ValueError, match="std_factor must be a positive number"):
+        band_model.log_predict_proba(X, std_factor=0.0)
 
 
 def test_success_model_follows_the_estimator_contract():

@@ -330,6 +330,22 @@ def test_believer_keeps_the_mean_and_collapses_std_at_pending_points(gp_2d):
     assert gp.X_.shape == X.shape and gp.n_pending_ == 0  # the original is untouched
 
 
+def test_condition_adds_imputed_values_with_the_kernel_held_fixed(gp_2d):
+    # Infill imputes a pessimistic value where the solver failed (Forrester, Sóbester & Keane 2006):
+    # the model must pass through it, lose its uncertainty there, and keep its hyper-parameters.
+    gp, _, _ = gp_2d
+    failed = np.array([[0.95, 0.05], [0.05, 0.95]])
+    mean, std = gp.predict(failed, return_std=True)
+    imputed = gp.condition(failed, mean + std)
+    new_mean, new_std = imputed.predict(failed, return_std=True)
+    np.testing.assert_allclose(new_mean, mean + std, rtol=1e-6)
+    assert np.all(new_std < 1e-3 * std)
+    np.testing.assert_array_equal(imputed.kernel_.theta, gp.kernel_.theta)
+    assert imputed.n_pending_ == 2 and gp.n_pending_ == 0
+    with pytest.raises(ValueError, match="y_new must hold 2 finite values"):
+        gp.condition(failed, [1.0, np.nan])
+
+
 def test_believer_with_no_pending_points_is_an_equivalent_copy(gp_2d):
     gp, _, _ = gp_2d
     copy = gp.believer(np.empty((0, 2)))
