@@ -40,6 +40,7 @@ import statistics
 import subprocess
 import time
 import warnings
+from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -49,7 +50,7 @@ import numpy as np
 from benchmarks.infill import Run, summarise
 from benchmarks.problems import HERE, Problem, make_sled
 from sortie import plan, sampling, stages
-from sortie.config import CampaignConfig, load_config
+from sortie.config import CampaignConfig, PlanSection, ScreeningSpec, StageSpec, load_config
 from sortie.goal import Goal
 from sortie.infill import History, InfillSettings, propose_infill
 from sortie.ledger import DesignRow
@@ -57,7 +58,10 @@ from sortie.mock_solver import physics
 from sortie.space import DesignSpace
 
 CONFIG = HERE.parent / "configs" / "sled-aftbody-20.yaml"
-STRATEGIES = ("staged", "all-20")
+STRATEGIES = ("staged", "staged-morris", "all-20")
+# The demo's first plan: 4 Morris trajectories (84 designs), then 16 Sobol' points on the selection.
+MORRIS_PLAN = {"screening": {"method": "morris", "trajectories": 4, "levels": 4, "select": {"fraction": 0.1}},
+               "initial": {"method": "sobol", "designs": 16}}
 DEFAULT_BUDGET = 118  # the demo's budget.designs
 DEFAULT_ALL_INITIAL = 32  # see the module docstring
 TARGET_REDUCTION = 0.30  # issue 5: staged has at least 30 % lower median regret
@@ -152,9 +156,10 @@ def _infill(setup: Setup, run: SpaceRun, space: DesignSpace, seed: int) -> None:
         run.add_values(setup.problem, space.to_values(proposal.x[None, :])[0])
 
 
-def run_staged(setup: Setup, seed: int) -> SpaceRun:
-    """Baseline, Morris screening, selection, Sobol' on the selection, infill: the demo plan with seed ``seed``."""
-    spec = setup.config.plan.screening
+def run_staged(setup: Setup, seed: int, plan_section: PlanSection | None = None) -> SpaceRun:
+    """Baseline, screening, selection, Sobol' on the selection, infill: the demo plan (or ``plan_section``) with seed ``seed``."""
+    plan_section = plan_section or setup.config.plan
+    spec = plan_section.screening
     assert spec is not None
     space, problem = setup.space, setup.problem
     source = setup.goal.constraints[0].source
@@ -167,14 +172,14 @@ def run_staged(setup: Setup, seed: int) -> SpaceRun:
         rows.append(DesignRow(len(rows) + 1, design.stage, design.reason, design.values, list(design.unit),
                               "done" if ok else "failed", run.objective[-1] if ok else None,
                               {source: float(run.margins[-1][0])} if ok else None, ok))
-    screening = stages.screen(spec, space, rows, setup.goal)
+    screening = stages.screen(spec, space, rows, setup.goal, seed=seed)
     run.selected = list(screening["selected"])
     run.screening = {"selected": screening["selected"], "reasons": screening["reasons"],
                      "score": [float(s) for s in np.asarray(screening["score"], dtype=float)]}
     if not run.selected:
         return run  # screening found nothing to optimise: the run ends short of the budget, and says so in its length
     reduced = space.keep_free(run.selected)
-    for design in plan.initial_designs(setup.config.plan.initial, reduced, seed, full=space):
+    for design in plan.initial_designs(plan_section.initial, reduced, seed, full=space):
         if len(run.X) >= problem.budget:
             break
         run.add_values(problem, design.values)
@@ -196,7 +201,14 @@ def run_all(setup: Setup, seed: int) -> SpaceRun:
     return run
 
 
-RUNNERS = {"staged": run_staged, "all-20": run_all}
+def run_staged_morris(setup: Setup, seed: int) -> SpaceRun:
+    """The staged plan with the Morris screen this demo used before (:data:`MORRIS_PLAN`)."""
+    section = setup.config.plan.model_copy(update={"screening": ScreeningSpec(**MORRIS_PLAN["screening"]),
+                                                   "initial": StageSpec(**MORRIS_PLAN["initial"])})
+    return run_staged(setup, seed, section)
+
+
+RUNNERS = {"staged": run_staged, "staged-morris": run_staged_morris, "all-20": run_all}
 
 
 def summarise_screening(setup: Setup, runs: dict[str, list[SpaceRun]]) -> dict[str, Any]:
@@ -212,7 +224,7 @@ def summarise_screening(setup: Setup, runs: dict[str, list[SpaceRun]]) -> dict[s
         s["wall_s"] = [r.wall_s for r in seeds]
         s["median_wall_s"] = statistics.median(s["wall_s"])
         s["infill_designs"] = [len(r.proposal_s) for r in seeds]
-        if name == "staged":
+        if name.startswith("staged"):
             s["selected"] = [r.selected for r in seeds]
             s["selection_is_active_set"] = [set(r.selected or []) == active for r in seeds]
             s["screening"] = [r.screening for r in seeds]
@@ -251,8 +263,8 @@ def print_table(summary: dict[str, Any]) -> None:
     head = ["seed"]
     for n in names:
         head += [f"{n} regret", f"{n} evals to 1 %", f"{n} wall s"]
-        if n == "staged":
-            head += ["staged selection"]
+        if n.startswith("staged"):
+            head += [f"{n} selection"]
     print("| " + " | ".join(head) + " |")
     print("|" + "---|" * len(head))
     short = {p: p.split("_")[0] for p in summary["active_parameters"]}
@@ -262,7 +274,7 @@ def print_table(summary: dict[str, Any]) -> None:
             s = strategies[n]
             hit = s["evals_to_1pct"][i]
             cells += [_fmt(s["final_regret"][i], ".4f"), "never" if hit is None else str(hit), f"{s['wall_s'][i]:.0f}"]
-            if n == "staged":
+            if n.startswith("staged"):
                 sel = s["selected"][i] or []
                 exact = s["selection_is_active_set"][i]
                 cells.append(("= active set" if exact else ", ".join(short.get(p, p) for p in sel))
@@ -275,7 +287,7 @@ def print_table(summary: dict[str, Any]) -> None:
         reached = sum(e is not None for e in s["evals_to_1pct"])
         cells += [f"**{_fmt(s['median_final_regret'], '.4f')}**", f"{'never' if med is None else f'{med:g}'} ({reached}/{n_seeds} reach)",
                   f"{s['median_wall_s']:.0f}"]
-        if n == "staged":
+        if n.startswith("staged"):
             cells.append(f"{sum(s['selection_is_active_set'])}/{n_seeds} exactly the active set")
     print("| " + " | ".join(cells) + " |")
     for n in names:
@@ -302,30 +314,41 @@ def main() -> None:
     parser.add_argument("--all-initial", type=int, default=DEFAULT_ALL_INITIAL, help="Sobol' points of all-20's initial experiment")
     parser.add_argument("--strategies", nargs="+", choices=STRATEGIES, default=list(STRATEGIES))
     parser.add_argument("--json", type=Path, default=Path("benchmarks/results/screening.json"))
+    parser.add_argument("--jobs", type=int, default=1, help="runs side by side (wall times then include contention)")
     args = parser.parse_args()
     code = code_state()
     setup = load_setup(args.budget, args.all_initial)
-    assert setup.config.plan.screening is not None
-    n_screen = setup.config.plan.screening.n_designs(setup.space.n_dims)
-    if "staged" in args.strategies and args.budget <= 1 + n_screen:
-        parser.error(f"--budget must exceed the baseline plus the {n_screen} screening designs for staged, got {args.budget}")
-    runs: dict[str, list[SpaceRun]] = {name: [] for name in args.strategies}
-    for seed in range(args.seeds):  # seed-major, so a partial log already compares the strategies
-        for name in args.strategies:
-            t0 = time.perf_counter()
-            run = RUNNERS[name](setup, seed)
-            run.wall_s = time.perf_counter() - t0
-            runs[name].append(run)
-            curve = run.best_curve()
-            regret = curve[-1] - setup.problem.reference
+    for name, spec in (("staged", setup.config.plan.screening), ("staged-morris", ScreeningSpec(**MORRIS_PLAN["screening"]))):
+        assert spec is not None
+        n_screen = spec.n_designs(setup.space.n_dims)
+        if name in args.strategies and args.budget <= 1 + n_screen:
+            parser.error(f"--budget must exceed the baseline plus the {n_screen} screening designs of {name}, got {args.budget}")
+    tasks = [(name, seed) for seed in range(args.seeds) for name in args.strategies]  # seed-major: a partial log already compares
+    done: dict[tuple[str, int], SpaceRun] = {}
+    with ProcessPoolExecutor(args.jobs) as pool:
+        futures = {pool.submit(_one_run, args.budget, args.all_initial, name, seed): (name, seed) for name, seed in tasks}
+        for future in as_completed(futures):
+            name, seed = futures[future]
+            run = done[name, seed] = future.result()
+            regret = run.best_curve()[-1] - setup.problem.reference
             print(f"{name} seed {seed}: regret {regret:.4f}, {len(run.X)} designs, {run.wall_s:.1f} s"
-                  + (f", selected {', '.join(run.selected or [])}" if name == "staged" else ""), flush=True)
+                  + (f", selected {', '.join(run.selected or [])}" if run.selected is not None else ""), flush=True)
+    runs = {name: [done[name, seed] for seed in range(args.seeds)] for name in args.strategies}
     result = summarise_screening(setup, runs)
     result["code"] = code
     print_table(result)
     args.json.parent.mkdir(parents=True, exist_ok=True)
     args.json.write_text(json.dumps(result, indent=2, default=_plain) + "\n")
     print(f"wrote {args.json}")
+
+
+def _one_run(budget: int, all_initial: int, name: str, seed: int) -> SpaceRun:
+    """One strategy and seed, timed; a module-level function so that worker processes can run it."""
+    setup = load_setup(budget, all_initial)
+    t0 = time.perf_counter()
+    run = RUNNERS[name](setup, seed)
+    run.wall_s = time.perf_counter() - t0
+    return run
 
 
 def code_state() -> dict[str, Any]:

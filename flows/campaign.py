@@ -250,10 +250,12 @@ class _Conductor:
             return False  # the selection needs every screening run
         spec = self.config.plan.screening
         assert spec is not None
-        result = stages.screen(spec, self.config.space(), designs, self.goal)
+        result = stages.screen(spec, self.config.space(), designs, self.goal, seed=self.config.campaign.seed)
         self.ledger.add_analysis("screening", result)
         self.ledger.event("screening", f"screening kept {', '.join(result['selected'])}; fixed "
                           f"{', '.join(result['fixed']) or 'none'} at baseline ({result['rule']})")
+        for warning in stages.screening_warnings(result):
+            self.ledger.event("screening", warning)
         self.space = self.config.space().keep_free(result["selected"])
         for design in initial_designs(self.config.plan.initial, self.space, self.config.campaign.seed, full=self.config.space()):
             design_id = self.ledger.add_design(stage=design.stage, reason=design.reason, values=design.values,

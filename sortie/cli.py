@@ -45,7 +45,7 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
     n_fixed = cfg.designs_before_infill()
     n_screen = n_fixed - 1 - n_initial
     n_cond = len(cfg.condition_list())
-    for note in sampling_notes(cfg.plan.initial):
+    for note in sampling_notes(cfg.plan, cfg.space().n_dims):
         typer.echo(f"note: {note}")
     screen = f"{n_screen} screening + " if n_screen else ""
     typer.echo(f"{config}: ok - {cfg.space().n_dims} free parameters, {n_cond} conditions, "

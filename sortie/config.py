@@ -221,16 +221,34 @@ class ScreeningSpec(_Section):
 
     ``morris``: ``trajectories`` (r) elementary-effect paths on a ``levels``-level grid, r(k+1)
     designs. ``one-at-a-time``: a sweep of each parameter through ``levels`` values around the
-    baseline, k(levels-1) designs; cheaper, but blind to interactions.
+    baseline, k(levels-1) designs; cheaper, but blind to interactions. ``surrogate``: ``designs``
+    scrambled Sobol' points over all k parameters, a Gaussian process per goal output, and the
+    total Sobol' indices of those processes (interactions included). Its designs fill the space,
+    so unlike Morris grid points they remain a good experiment for the selected parameters and
+    are not spent on screening alone; the price is that its numbers are only as good as the
+    processes' leave-one-out error, which is recorded beside them.
     """
 
-    method: Literal["morris", "one-at-a-time"] = "morris"
+    method: Literal["morris", "one-at-a-time", "surrogate"] = "morris"
     trajectories: int = Field(default=6, ge=2, le=100)
     levels: int = Field(default=4, ge=2, le=20)
+    designs: int | None = Field(default=None, ge=4, le=4096)
     select: SelectSpec = Field(default_factory=lambda: SelectSpec(fraction=0.1))
 
     @model_validator(mode="after")
     def _levels(self) -> ScreeningSpec:
+        given = self.model_fields_set
+        if self.method == "surrogate":
+            wrong = [k for k in ("trajectories", "levels") if k in given]
+            if wrong:
+                raise ValueError(f"{' and '.join(repr(k) for k in wrong)} apply to morris and one-at-a-time; "
+                                 f"method 'surrogate' takes 'designs' (Sobol' points over every free parameter)")
+            return self
+        if self.designs is not None:
+            raise ValueError(f"'designs' applies to method 'surrogate'; {self.method} sets its size by "
+                             f"{'trajectories and levels' if self.method == 'morris' else 'levels'}")
+        if self.method == "one-at-a-time" and "trajectories" in given:
+            raise ValueError("'trajectories' applies to morris, not one-at-a-time")
         if self.method == "morris" and self.levels % 2:
             raise ValueError(f"levels ({self.levels}) must be even for morris, so that every step is the same size")
         if self.method == "one-at-a-time" and self.levels < 3:
@@ -238,7 +256,22 @@ class ScreeningSpec(_Section):
         return self
 
     def n_designs(self, n_free: int) -> int:
-        return self.trajectories * (n_free + 1) if self.method == "morris" else n_free * (self.levels - 1)
+        """Designs the stage runs over ``n_free`` parameters (the baseline not counted)."""
+        if self.method == "morris":
+            return self.trajectories * (n_free + 1)
+        if self.method == "one-at-a-time":
+            return n_free * (self.levels - 1)
+        return self.designs if self.designs is not None else default_surrogate_designs(n_free)
+
+
+def default_surrogate_designs(n_free: int) -> int:
+    """The smallest power of two of at least 3k points (a power of two keeps the Sobol' balance).
+
+    On the 20-parameter sled (6 active), 32 points left a Gaussian process unsure of the weakest
+    active parameter in 2 of 10 seeds, while 64 separated active from inert in all 10 (total
+    indices at least 0.17 against at most 0.012); 3k is that margin's rule of thumb.
+    """
+    return 1 << max(3 * n_free - 1, 1).bit_length()
 
 
 class ConfirmationSpec(_Section):
@@ -394,6 +427,12 @@ class CampaignConfig(_Section):
         for name in keep or []:
             if name not in free:
                 problems.append(f"plan.screening.select.keep: {name!r} is not a free parameter; allowed: {', '.join(free)}")
+        screening = self.plan.screening
+        if screening is not None and screening.method == "surrogate" and screening.designs is not None \
+                and screening.designs < n_free + 2:
+            problems.append(f"plan.screening.designs: {screening.designs} Sobol' points cannot separate the effects of "
+                            f"{n_free} free parameters; allowed: at least {n_free + 2} "
+                            f"(default {default_surrogate_designs(n_free)})")
         if not problems:
             from sortie.plan import initial_unit_points
 

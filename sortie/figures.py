@@ -169,7 +169,8 @@ def screening_figure(data: Mapping, labels: Mapping[str, str], *, max_outputs: i
 
     ``data`` is a screening analysis as recorded in the ledger: ``parameters``, ``outputs``,
     ``score``, ``selected``, and for ``method: morris`` ``mu_star`` and ``sigma`` (k×s), drawn as
-    μ* against σ; for ``one-at-a-time`` ``span`` (k×s), drawn as bars. Only the first
+    μ* against σ; for ``one-at-a-time`` ``span`` and for ``surrogate`` ``total_order`` (k×s), drawn
+    as bars. Only the first
     ``max_outputs`` outputs get a panel and only the ``max_labels`` largest effects are named
     (``max_bars`` drawn), so twenty parameters stay readable; the score panel lists every parameter.
     """
@@ -190,7 +191,8 @@ def screening_figure(data: Mapping, labels: Mapping[str, str], *, max_outputs: i
     fig = Figure(figsize=(4.3 * ncols, max(3.8, 0.2 * k + 1.2) * nrows), layout="constrained")
     axes = np.atleast_1d(fig.subplots(nrows, ncols)).ravel()
     colours = np.array([BEST if n in selected else "#9a9a9a" for n in names])
-    effect = matrix("mu_star" if morris else "span")
+    method = data.get("method", "morris")
+    effect = matrix({"morris": "mu_star", "surrogate": "total_order"}.get(method, "span"))
     sigma = matrix("sigma")
     for j, out in enumerate(outputs):
         ax = axes[j]
@@ -219,7 +221,7 @@ def screening_figure(data: Mapping, labels: Mapping[str, str], *, max_outputs: i
             order = np.argsort(-np.nan_to_num(ms, nan=-1))[:max_bars][::-1]
             ax.barh([names[i] for i in order], np.nan_to_num(ms[order]), color=colours[order])
             ax.tick_params(axis="y", labelsize=7)
-            ax.set_xlabel("range over the sweep")
+            ax.set_xlabel("total Sobol' index of the surrogate" if method == "surrogate" else "range over the sweep")
         ax.set_title(_wrap(str(out)), fontsize=9)
         ax.grid(alpha=0.3)
     ax = axes[len(outputs)]

@@ -55,13 +55,16 @@ def initial_unit_points(stage: StageSpec, space: DesignSpace, seed: int) -> np.n
     raise ValueError(f"unknown sampling method {stage.method!r}")
 
 
-def sampling_notes(stage: StageSpec) -> list[str]:
-    """Advice (not errors) about a stage, shown by `sortie check`."""
+def sampling_notes(plan: PlanSection, n_free: int) -> list[str]:
+    """Advice (not errors) about the plan's Sobol' stages, shown by `sortie check`."""
+    sized = [("plan.initial.designs", plan.initial.designs if plan.initial.method == "sobol" else None)]
+    if plan.screening is not None and plan.screening.method == "surrogate":
+        sized.append(("plan.screening.designs", plan.screening.n_designs(n_free)))
     notes = []
-    n = stage.designs
-    if stage.method == "sobol" and n is not None and n & (n - 1):
-        lo = 1 << (n.bit_length() - 1)
-        notes.append(f"plan.initial.designs: {n} is not a power of two, so the Sobol' points lose their balance; {lo} or {lo * 2} keep it")
+    for key, n in sized:
+        if n is not None and n & (n - 1):
+            lo = 1 << (n.bit_length() - 1)
+            notes.append(f"{key}: {n} is not a power of two, so the Sobol' points lose their balance; {lo} or {lo * 2} keep it")
     return notes
 
 
@@ -85,6 +88,10 @@ def screening_unit_points(spec: ScreeningSpec, space: DesignSpace, seed: int) ->
 
     if spec.method == "morris":
         return morris_trajectories(space.n_dims, spec.trajectories, levels=spec.levels, seed=seed)
+    if spec.method == "surrogate":
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", sampling.SamplingWarning)  # a size that is not a power of two: `sortie check` says so
+            return sampling.sobol(spec.n_designs(space.n_dims), space.n_dims, seed=seed)
     return sampling.one_at_a_time(space.baseline_unit(), spec.levels)[1:]
 
 
@@ -97,7 +104,8 @@ def screening_designs(spec: ScreeningSpec, space: DesignSpace, seed: int) -> lis
         per = space.n_dims + 1
         reasons = [f"morris trajectory {i // per + 1} of {spec.trajectories}, point {i % per + 1} of {per}" for i in range(len(points))]
     else:
-        reasons = [f"one-at-a-time sweep point {i} of {len(points)}" for i in range(1, len(points) + 1)]
+        what = "sobol screening point" if spec.method == "surrogate" else "one-at-a-time sweep point"
+        reasons = [f"{what} {i} of {len(points)}" for i in range(1, len(points) + 1)]
     return [ProposedDesign("screening", why, tuple(float(x) for x in u), v)
             for why, u, v in zip(reasons, points, space.to_values(points), strict=True)]
 

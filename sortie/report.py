@@ -352,10 +352,23 @@ def _screening(ctx: _Context, s: Section) -> None:
         fig = figures.screening_figure(data, _param_labels(ctx.config))
         name = ctx.save(fig, "fig-screening.png")
         extra = f" Only the first 4 of {len(outputs)} outputs have a panel; the score combines all." if len(outputs) > 4 else ""
-        s.image(name, "Morris mu-star against sigma per parameter",
-                "Morris screening: μ* (mean absolute elementary effect, how much a parameter moves an output) against "
-                "σ (how much its effect changes across the space: interactions or curvature). Blue: parameters kept "
-                "free; grey: fixed at their baseline. Right: the combined importance the selection rule used." + extra)
+        method = data.get("method", "morris")
+        if method == "morris":
+            alt, what = ("Morris mu-star against sigma per parameter",
+                         "Morris screening: μ* (mean absolute elementary effect, how much a parameter moves an output) "
+                         "against σ (how much its effect changes across the space: interactions or curvature).")
+        elif method == "surrogate":
+            r2 = ", ".join(f"{o}: {'-' if v is None else f'{v:.2f}'}" for o, v in zip(outputs, data.get("loo_r2") or [], strict=False))
+            alt, what = ("Total Sobol indices of the screening surrogates per parameter",
+                         "Surrogate screening: total Sobol' index of each parameter (its share of the output's variance, "
+                         "interactions included) computed on a Gaussian process fitted to the screening designs. The "
+                         f"processes' leave-one-out R² ({r2}) says how far the indices can be trusted.")
+        else:
+            alt, what = ("One-at-a-time sweep ranges per parameter",
+                         "One-at-a-time screening: the range each output covers as one parameter sweeps through its "
+                         "levels around the baseline (blind to interactions).")
+        s.image(name, alt, what + " Blue: parameters kept free; grey: fixed at their baseline. Right: the combined "
+                "importance the selection rule used." + extra)
         reasons = data.get("reasons") or {}
         if reasons:
             selected = set(data.get("selected") or [])

@@ -48,6 +48,7 @@ References
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -61,11 +62,13 @@ from sortie.screening import _check_int, _check_names  # one set of argument che
 __all__ = [
     "AnalyticIndices",
     "SobolIndices",
+    "SurrogateScreen",
     "g_function",
     "g_function_indices",
     "ishigami",
     "ishigami_indices",
     "sobol_indices",
+    "surrogate_screening",
     "surrogate_sobol_indices",
 ]
 
@@ -291,6 +294,113 @@ def surrogate_sobol_indices(
         return np.column_stack([np.asarray(m.predict(X), dtype=float).reshape(-1) for m in models.values()])
 
     return sobol_indices(predict, n_dims, **kwargs)
+
+
+@dataclass(frozen=True)
+class SurrogateScreen:
+    """Screening numbers read from Gaussian processes fitted to a space-filling design.
+
+    Attributes
+    ----------
+    indices : SobolIndices
+        Sobol' indices of each output's GP mean.
+    importance : ndarray of shape (n_dims, n_outputs)
+        ``sqrt(max(S_Ti, 0))``: the total index on the scale of the output itself rather than of
+        its variance, so that a selection ``fraction`` means what it means for Morris μ* (a share
+        of the largest effect). On the variance scale a parameter with half the effect of the
+        strongest scores a quarter. NaN for an output with too few finished designs.
+    loo_r2 : ndarray of shape (n_outputs,)
+        Leave-one-out coefficient of determination of each GP: how far its indices can be
+        trusted. Below about 0.5 the process has not resolved the output and a weak parameter may
+        look inert.
+    n_points : ndarray of int, shape (n_outputs,)
+        Finished designs each GP was fitted to.
+    """
+
+    indices: SobolIndices
+    importance: np.ndarray
+    loo_r2: np.ndarray
+    n_points: np.ndarray
+
+
+def surrogate_screening(
+    X: np.ndarray,
+    y: np.ndarray,
+    *,
+    names: Sequence[str] | None = None,
+    output_names: Sequence[str] | None = None,
+    seed: int = 0,
+    n_base: int = 1024,
+    n_resamples: int = 200,
+) -> SurrogateScreen:
+    """Fit a GP to each output and compute the Sobol' indices of its mean: a screen from a space-filling design.
+
+    Morris trajectories cost r(k+1) runs that are of little use afterwards (their grid points
+    collapse onto a few points of the selected parameters). A Sobol' design of about 3k runs,
+    read through an ARD Gaussian process, ranks the parameters by their total effect
+    (interactions included), and its runs remain a well-spread experiment in whatever subspace
+    is kept. Rows where an output is NaN (a failed design) are left out of that output's fit.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_runs, n_dims)
+        Designs in the unit cube.
+    y : array-like of shape (n_runs,) or (n_runs, n_outputs)
+        Outputs; NaN where a run failed.
+    names, output_names : sequence of str, optional
+        Parameter and output names.
+    seed : int
+        Seeds the GP restarts, the Sobol' sample and the bootstrap.
+    n_base : int, default 1024
+        Base sample of the indices (``n_base (d + 2)`` GP predictions); the GP's own error
+        dominates long before the estimator's.
+    n_resamples : int, default 200
+        Bootstrap resamples for the intervals.
+
+    Returns
+    -------
+    SurrogateScreen
+    """
+    from sortie.surrogate import GaussianProcessSurrogate  # the models module is heavy; screening numbers are not
+
+    X = np.asarray(X, dtype=float)
+    Y = np.asarray(y, dtype=float)
+    Y = Y[:, None] if Y.ndim == 1 else Y
+    if X.ndim != 2 or Y.ndim != 2 or X.shape[0] != Y.shape[0]:
+        raise ValueError(f"X must be (n_runs, n_dims) and y (n_runs, n_outputs) with the same rows, got {X.shape} and {Y.shape}.")
+    n_dims, n_out = X.shape[1], Y.shape[1]
+    out_names = _check_names("output_names", output_names, n_out, "y")
+    models: dict[str, Any] = {}
+    loo_r2 = np.full(n_out, np.nan)
+    n_points = np.zeros(n_out, dtype=int)
+    for j in range(n_out):
+        ok = np.isfinite(Y[:, j])
+        n_points[j] = int(ok.sum())
+        if n_points[j] < 3:
+            continue
+        gp = GaussianProcessSurrogate(n_restarts=4, random_state=seed + j).fit(X[ok], Y[ok, j])
+        models[out_names[j]] = gp
+        spread = float(np.sum((Y[ok, j] - Y[ok, j].mean()) ** 2))
+        loo_r2[j] = 1.0 - float(np.sum(gp.loo_residuals() ** 2)) / spread if spread > 0 else np.nan
+    if not models:
+        raise ValueError("no output has 3 or more finished designs; a surrogate screen needs runs that succeeded.")
+    fitted = surrogate_sobol_indices(models, n_dims, n_base=n_base, seed=seed, n_resamples=n_resamples, names=names)
+    # Outputs without a model get NaN columns, so rows and columns keep their meaning.
+    where = [out_names.index(k) for k in models]
+
+    def widen(a: np.ndarray) -> np.ndarray:
+        full = np.full((n_dims, n_out), np.nan)
+        full[:, where] = a
+        return full
+
+    variance = np.full(n_out, np.nan)
+    variance[where] = fitted.variance
+    indices = dataclasses.replace(
+        fitted, output_names=tuple(out_names), first_order=widen(fitted.first_order), total_order=widen(fitted.total_order),
+        first_order_low=widen(fitted.first_order_low), first_order_high=widen(fitted.first_order_high),
+        total_order_low=widen(fitted.total_order_low), total_order_high=widen(fitted.total_order_high),
+        variance=variance)
+    return SurrogateScreen(indices, np.sqrt(np.clip(indices.total_order, 0.0, None)), loo_r2, n_points)
 
 
 # --------------------------------------------------------------------------- analytic test functions

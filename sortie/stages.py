@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from sortie.screening import morris_effects, select_parameters, sweep_effects
-from sortie.sensitivity import surrogate_sobol_indices
+from sortie.sensitivity import surrogate_screening, surrogate_sobol_indices
 from sortie.space import DesignSpace
 
 if TYPE_CHECKING:
@@ -39,11 +39,13 @@ def goal_outputs(designs: Sequence[DesignRow], goal: Goal) -> tuple[list[str], n
     return names, np.array(rows, dtype=float).reshape(len(designs), len(names))
 
 
-def screen(spec: ScreeningSpec, space: DesignSpace, designs: Sequence[DesignRow], goal: Goal) -> dict[str, Any]:
+def screen(spec: ScreeningSpec, space: DesignSpace, designs: Sequence[DesignRow], goal: Goal, *,
+           seed: int = 0) -> dict[str, Any]:
     """Effects of every free parameter on the goal from the screening designs, and the selection.
 
     Morris effects are computed on the planned grid points recorded as each design's ``unit``;
-    one-at-a-time effects on the baseline (design 1) and the sweep.
+    one-at-a-time effects on the baseline (design 1) and the sweep; surrogate indices on the
+    baseline and the Sobol' points, through Gaussian processes seeded by ``seed``.
     """
     names = [p.name for p in space.free]
     screening = [d for d in designs if d.stage == "screening"]
@@ -54,6 +56,17 @@ def screen(spec: ScreeningSpec, space: DesignSpace, designs: Sequence[DesignRow]
                                 "mu_star": result.mu_star, "sigma": result.sigma, "n_effects": result.n_effects,
                                 "n_trajectories": result.n_trajectories, "importance": "mu_star"}
         importance = result.mu_star
+    elif spec.method == "surrogate":
+        rows = [designs[0], *screening]  # the baseline is a run like any other for the processes
+        outputs, y = goal_outputs(rows, goal)
+        found = surrogate_screening(np.array([d.unit for d in rows], dtype=float), y, names=names,
+                                    output_names=outputs, seed=seed)
+        ix = found.indices
+        data = {"method": "surrogate", "parameters": names, "outputs": outputs, "root_total": found.importance,
+                "first_order": ix.first_order, "total_order": ix.total_order, "total_order_low": ix.total_order_low,
+                "total_order_high": ix.total_order_high, "confidence_level": ix.confidence_level,
+                "loo_r2": found.loo_r2, "n_points": found.n_points, "importance": "root_total"}
+        importance = found.importance
     else:
         rows = [designs[0], *screening]  # the baseline is the centre of every sweep
         outputs, y = goal_outputs(rows, goal)
@@ -66,10 +79,32 @@ def screen(spec: ScreeningSpec, space: DesignSpace, designs: Sequence[DesignRow]
     return reselect(data, spec.select, importance=importance)
 
 
+# Below this leave-one-out R^2 a surrogate screen's process has not resolved its output.
+MIN_SCREEN_R2 = 0.5
+
+
+def screening_warnings(data: dict[str, Any]) -> list[str]:
+    """Sentences about a screening result the user should read before trusting its selection."""
+    notes = []
+    if data.get("loo_r2") is None:
+        return notes  # a method read from the runs themselves, not from a model
+    for name, r2 in zip(data["outputs"], np.asarray(data["loo_r2"], dtype=float), strict=True):
+        if not np.isfinite(r2) or r2 < MIN_SCREEN_R2:
+            shown = "no" if not np.isfinite(r2) else f"only {max(r2, 0.0):.0%} of its"
+            notes.append(f"the screening surrogate of {name!r} explains {shown} leave-one-out variance (wanted at least "
+                         f"{MIN_SCREEN_R2:.0%}); a weak parameter may have been fixed: check the reasons, or name the "
+                         f"parameters with plan.screening.select.keep and resume")
+    return notes
+
+
+# What each method's importance is, as the selection's reasons name it.
+MEASURES = {"morris": "μ*", "one-at-a-time": "sweep range", "surrogate": "√(total Sobol' index)"}
+
+
 def reselect(data: dict[str, Any], select: SelectSpec, *, importance: Any = None) -> dict[str, Any]:
     """Apply a selection rule to recorded screening effects; returns a new document."""
     values = np.asarray(data[data["importance"]] if importance is None else importance, dtype=float)
-    measure = "μ*" if data["method"] == "morris" else "sweep range"
+    measure = MEASURES.get(data["method"], "importance")
     chosen = select_parameters(values, data["parameters"], top=select.top, fraction=select.fraction,
                                keep=select.keep, output_names=data["outputs"], measure=measure)
     return {**data, "selected": list(chosen.selected), "fixed": list(chosen.fixed), "reasons": dict(chosen.reasons),

@@ -347,3 +347,34 @@ def test_budget_needs_designs_or_cases(tmp_path: Path) -> None:
     with pytest.raises(ConfigError) as info:
         parse_config(yaml.safe_dump(config), base_dir=tmp_path)
     assert info.value.problems == ["budget: give designs, cases or both (every design costs one case per condition)"]
+
+
+# --- screening stage sizes (in-process only: the CLI path is the same as above) ---------------
+
+_SCREEN = {"initial": {"method": "sobol", "designs": 8}, "infill": {}}
+SCREENING_CONFIGS = [
+    BadConfig("surrogate-with-trajectories", "plan.screening", ("'trajectories' apply to morris", "takes 'designs'"),
+              _set("plan", screening={"method": "surrogate", "trajectories": 4}, **_SCREEN)),
+    BadConfig("morris-with-designs", "plan.screening", ("'designs' applies to method 'surrogate'",),
+              _set("plan", screening={"method": "morris", "designs": 32}, **_SCREEN)),
+    BadConfig("surrogate-too-few-designs", "plan.screening.designs", ("5 Sobol' points", "8 free parameters",
+                                                                     "at least 10", "default 32"),
+              _set("plan", screening={"method": "surrogate", "designs": 5}, **_SCREEN)),
+]
+
+
+@pytest.mark.parametrize("case", [pytest.param(c, id=c.id) for c in SCREENING_CONFIGS])
+def test_screening_stage_options_belong_to_their_method(case: BadConfig, tmp_path: Path) -> None:
+    path = _write_campaign(tmp_path, case.config_text())
+    with pytest.raises(ConfigError) as info:
+        parse_config(path.read_text(), base_dir=tmp_path, source=CONFIG_NAME, check_solver=check_solver)
+    _check_problem_lines(info.value.problems, case, CONFIG_NAME)
+
+
+@pytest.mark.parametrize(("n_free", "expected"), [(1, 4), (5, 16), (8, 32), (20, 64), (22, 128)])
+def test_surrogate_screening_defaults_to_a_power_of_two_of_at_least_three_points_per_parameter(n_free: int, expected: int) -> None:
+    from sortie.config import ScreeningSpec
+
+    assert ScreeningSpec(method="surrogate").n_designs(n_free) == expected
+    assert ScreeningSpec(method="surrogate", designs=40).n_designs(n_free) == 40
+    assert ScreeningSpec(method="morris", trajectories=3).n_designs(n_free) == 3 * (n_free + 1)

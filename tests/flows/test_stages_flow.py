@@ -93,3 +93,27 @@ def test_infill_and_confirmation_after_screening(tmp_path: Path) -> None:
     assert check["objective"]["predicted"] == pytest.approx(confirmation.prediction["objective_mean"])
     assert check["passed"] == bool(confirmation.feasible)
     assert [c["constraint"] for c in check["constraints"]] == config["goal"]["subject_to"]
+
+
+def test_surrogate_screening_selects_the_parameters_the_mock_uses_and_its_designs_serve_later_stages(tmp_path: Path) -> None:
+    config = _config()
+    config["plan"]["screening"] = {"method": "surrogate", "select": {"fraction": 0.25}}
+    config["budget"] = {"designs": 1 + 64 + 8}
+    directory = _run(tmp_path, config)
+    with Ledger.open(ledger_path(directory)) as ledger:
+        assert ledger.check_consistency() == []
+        designs = ledger.designs()
+        (screening,) = ledger.analyses("screening")
+        events = [e["message"] for e in ledger.events() if e["kind"] == "screening"]
+    data = screening["data"]
+    assert data["method"] == "surrogate" and data["n_designs"] == 64  # 3 x 20 rounded up to a power of two
+    # The answer comes from the mock's own definition of what its physics reads.
+    assert set(data["selected"]) == set(physics.ACTIVE_PARAMETERS)
+    assert all(r2 >= 0.5 for r2 in data["loo_r2"]) and len(events) == 1, events  # no warning about the processes
+    total = dict(zip(data["parameters"], data["total_order"], strict=True))
+    inert = set(config["parameters"]) - set(physics.ACTIVE_PARAMETERS)
+    assert max(max(total[n]) for n in inert) < min(max(total[n]) for n in physics.ACTIVE_PARAMETERS)
+    screened = [d for d in designs if d.stage == "screening"]
+    # Sobol' points move every parameter, so each one is a distinct design of the selected parameters too.
+    assert len({tuple(d.values[n] for n in physics.ACTIVE_PARAMETERS if n != "fin_count") for d in screened}) == 64
+    assert [d.stage for d in designs].count("initial") == 8 and len(designs) == config["budget"]["designs"]
