@@ -180,8 +180,11 @@ def _stage_lines(s: dict) -> list[str]:
     lines = []
     if s["screening"]:
         scr = s["screening"]
+        r2 = scr.get("loo_r2")
+        trust = ("; leave-one-out R² of its processes: " + ", ".join(f"{o} {_fmt(v)}" for o, v in zip(scr["outputs"], r2, strict=True))
+                 if r2 is not None else "")
         lines.append(f"screening ({scr['method']}, {scr['rule']}): kept {', '.join(scr['selected'])}; "
-                     f"fixed at baseline: {', '.join(scr['fixed']) or 'none'}")
+                     f"fixed at baseline: {', '.join(scr['fixed']) or 'none'}{trust}")
     for check in s["confirmations"]:
         obj = check["objective"]
         lines.append(f"confirmation of design {check['design']}: {check['verdict']}; objective predicted "
@@ -190,7 +193,7 @@ def _stage_lines(s: dict) -> list[str]:
 
 
 def _fmt(v: object) -> str:
-    return f"{v:.4g}" if isinstance(v, float) else str(v)
+    return f"{v:.4g}" if isinstance(v, float) else "-" if v is None else str(v)
 
 
 @app.command()

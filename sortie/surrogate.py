@@ -53,7 +53,7 @@ from typing import Any
 
 import numpy as np
 from scipy.interpolate import RBFInterpolator
-from scipy.linalg import cho_solve, cholesky, lu_factor, lu_solve, solve_triangular
+from scipy.linalg import LinAlgWarning, cho_solve, cholesky, lu_factor, lu_solve, solve_triangular
 from scipy.linalg.lapack import dpotri
 from scipy.optimize import minimize
 from scipy.spatial.distance import cdist
@@ -1049,10 +1049,19 @@ class RadialBasisSurrogate(RegressorMixin, BaseEstimator):
         # Linear tail in coded units; any basis of the same polynomial space gives the same LOO.
         P = np.hstack([np.ones((n, 1)), 2.0 * self.X_ - 1.0])
         M = np.block([[K, P], [P.T, np.zeros((k + 1, k + 1))]])
-        lu = lu_factor(M, check_finite=False)
+        with warnings.catch_warnings():
+            # An exactly singular M (a parameter that never varies among these designs) is an
+            # answer, not noise for the user's terminal: the candidate is skipped with this reason.
+            warnings.simplefilter("error", LinAlgWarning)
+            try:
+                lu = lu_factor(M, check_finite=False)
+            except LinAlgWarning:
+                raise ValueError("The radial basis leave-one-out system is singular (a parameter takes one value "
+                                 "in every design, or the designs lie on a hyperplane).") from None
         M_inv = lu_solve(lu, np.eye(n + k + 1), check_finite=False)
         coef = M_inv[:n, :n] @ self.y_
-        return coef / np.diag(M_inv)[:n]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return coef / np.diag(M_inv)[:n]
 
 
 # --------------------------------------------------------------------------- model choice

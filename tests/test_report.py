@@ -177,6 +177,26 @@ def test_twenty_parameters_after_screening(twenty: Path, tmp_path: Path) -> None
     assert_top_designs_equal_the_ledger(page, twenty)
 
 
+def test_a_surrogate_screen_is_described_as_such_with_its_processes_trust(twenty: Path, tmp_path: Path) -> None:
+    from sortie import stages
+    from sortie.config import ScreeningSpec
+
+    directory = tmp_path / "camp"
+    shutil.copytree(twenty, directory)
+    view = open_campaign(directory)
+    spec = ScreeningSpec(method="surrogate", select={"fraction": 0.25})
+    with Ledger.open(ledger_path(directory)) as ledger:
+        result = stages.screen(spec, view.config.space(), ledger.designs(), view.config.goal.build(), seed=0)
+        ledger.add_analysis("screening", result)
+    page = check_report(write_report(directory, tmp_path / "report"))
+    assert "fig-screening.png" in page.images
+    assert "Surrogate screening: total Sobol' index" in page.plain and "Morris screening" not in page.plain
+    r2 = ", ".join(f"{o}: {v:.2f}" for o, v in zip(result["outputs"], result["loo_r2"], strict=True))
+    assert f"leave-one-out R² ({r2})" in page.plain
+    reasons = next(rows for cls, rows in page.tables if [t for _, t in rows[0]] == ["parameter", "decision", "why"])
+    assert any("√(total Sobol' index)" in t for _, t in reasons[1]), reasons[1]
+
+
 def test_a_campaign_caught_running(tmp_path: Path) -> None:
     """Few designs, some pending, no model choice recorded yet: every section still says something."""
     directory = simulate_campaign(tmp_path, sled_config(tmp_path), running=8)
