@@ -115,7 +115,7 @@ class Setup:
     all_initial: int
 
 
-def load_setup(budget: int, all_initial: int) -> Setup:
+def load_setup(budget: int, all_initial: int, screen_designs: int | None = None) -> Setup:
     """Read the demo config and check it poses the same problem as ``make_sled`` (so f* applies).
 
     The sled reference was computed over the six active parameters; it holds for the 20-parameter
@@ -123,6 +123,10 @@ def load_setup(budget: int, all_initial: int) -> Setup:
     which is checked here rather than assumed.
     """
     config = load_config(CONFIG)
+    if screen_designs is not None:
+        assert config.plan.screening is not None and config.plan.screening.method == "surrogate"
+        screening = config.plan.screening.model_copy(update={"designs": screen_designs})
+        config = config.model_copy(update={"plan": config.plan.model_copy(update={"screening": screening})})
     space = config.space()
     goal = config.goal.build()
     sled = make_sled()
@@ -218,6 +222,8 @@ def summarise_screening(setup: Setup, runs: dict[str, list[SpaceRun]]) -> dict[s
     out["config"] = str(CONFIG.relative_to(HERE.parent))
     out["active_parameters"] = list(physics.ACTIVE_PARAMETERS)
     out["all_initial"] = setup.all_initial
+    assert setup.config.plan.screening is not None
+    out["staged_screening_designs"] = setup.config.plan.screening.n_designs(setup.space.n_dims)
     active = set(physics.ACTIVE_PARAMETERS)
     for name, seeds in runs.items():
         s = out["strategies"][name]
@@ -315,9 +321,11 @@ def main() -> None:
     parser.add_argument("--strategies", nargs="+", choices=STRATEGIES, default=list(STRATEGIES))
     parser.add_argument("--json", type=Path, default=Path("benchmarks/results/screening.json"))
     parser.add_argument("--jobs", type=int, default=1, help="runs side by side (wall times then include contention)")
+    parser.add_argument("--screen-designs", type=int, default=None,
+                        help="override plan.screening.designs of the demo's surrogate screen (staged only)")
     args = parser.parse_args()
     code = code_state()
-    setup = load_setup(args.budget, args.all_initial)
+    setup = load_setup(args.budget, args.all_initial, args.screen_designs)
     for name, spec in (("staged", setup.config.plan.screening), ("staged-morris", ScreeningSpec(**MORRIS_PLAN["screening"]))):
         assert spec is not None
         n_screen = spec.n_designs(setup.space.n_dims)
@@ -326,7 +334,7 @@ def main() -> None:
     tasks = [(name, seed) for seed in range(args.seeds) for name in args.strategies]  # seed-major: a partial log already compares
     done: dict[tuple[str, int], SpaceRun] = {}
     with ProcessPoolExecutor(args.jobs) as pool:
-        futures = {pool.submit(_one_run, args.budget, args.all_initial, name, seed): (name, seed) for name, seed in tasks}
+        futures = {pool.submit(_one_run, args.budget, args.all_initial, args.screen_designs, name, seed): (name, seed) for name, seed in tasks}
         for future in as_completed(futures):
             name, seed = futures[future]
             run = done[name, seed] = future.result()
@@ -342,9 +350,9 @@ def main() -> None:
     print(f"wrote {args.json}")
 
 
-def _one_run(budget: int, all_initial: int, name: str, seed: int) -> SpaceRun:
+def _one_run(budget: int, all_initial: int, screen_designs: int | None, name: str, seed: int) -> SpaceRun:
     """One strategy and seed, timed; a module-level function so that worker processes can run it."""
-    setup = load_setup(budget, all_initial)
+    setup = load_setup(budget, all_initial, screen_designs)
     t0 = time.perf_counter()
     run = RUNNERS[name](setup, seed)
     run.wall_s = time.perf_counter() - t0

@@ -378,3 +378,9 @@ def test_surrogate_screening_defaults_to_a_power_of_two_of_at_least_three_points
     assert ScreeningSpec(method="surrogate").n_designs(n_free) == expected
     assert ScreeningSpec(method="surrogate", designs=40).n_designs(n_free) == 40
     assert ScreeningSpec(method="morris", trajectories=3).n_designs(n_free) == 3 * (n_free + 1)
+
+
+@pytest.mark.parametrize("path", sorted((ROOT / "configs").glob("*.yaml")), ids=lambda p: p.name)
+def test_every_shipped_config_is_valid(path: Path) -> None:
+    config = parse_config(path.read_text(encoding="utf-8"), base_dir=path.parent, source=str(path), check_solver=check_solver)
+    assert config.target_designs() <= config.budget.max_designs(len(config.condition_list()))
