@@ -1,18 +1,22 @@
-"""Does screening pay? Staged (Morris screening, then infill on the selected parameters) against infill over all 20.
+"""Does screening pay? Staged (screening, then infill on the selected parameters) against infill over all 20.
 
 The problem is the 20-parameter demo (``configs/sled-aftbody-20.yaml``): the mock sled physics at
 the demo's four Mach numbers, objective ``max(lift) - min(lift)``, constraint ``drag <=
 baseline.drag`` at every Mach. Six parameters drive the physics; the other fourteen are inert, so
 the optimum is the stored six-parameter sled reference (``benchmarks/sled_reference.json``) with
-the inert ones anywhere. Both strategies spend the same number of designs (the baseline counted):
+the inert ones anywhere. Every strategy spends the same number of designs (the baseline counted):
 
-* ``staged`` -- what the demo campaign does, with the config's own settings: the baseline, Morris
-  screening over all 20 parameters (``plan.screening_unit_points``), the effects and the selection
-  computed by ``stages.screen`` on the objective and the constraint margin, the Sobol' initial
-  experiment on the selected parameters (``plan.initial_designs`` on ``DesignSpace.keep_free``),
-  then expected-improvement infill (``propose_infill``, one design at a time) on the selected
-  parameters until the budget. As in the flow, every finished design, screening runs included,
-  feeds the surrogates, projected onto the selected parameters.
+* ``staged`` -- what the demo campaign does, with the config's own settings: the baseline, the
+  surrogate screen over all 20 parameters (Sobol' points from ``plan.screening_unit_points``; the
+  total indices of a GP per goal value and the selection computed by ``stages.screen``), the
+  Sobol' initial experiment on the selected parameters (``plan.initial_designs`` on
+  ``DesignSpace.keep_free``), then expected-improvement infill (``propose_infill``, one design at
+  a time) on the selected parameters until the budget. As in the flow, every finished design,
+  screening runs included, feeds the surrogates, projected onto the selected parameters.
+  ``--screen-designs N`` changes the screen's size (the trade-off: fewer points leave more
+  budget to infill but may keep an inert parameter).
+* ``staged-morris`` -- the same with the demo's first plan (:data:`MORRIS_PLAN`): four Morris
+  trajectories (84 designs) and 16 Sobol' points on the selection.
 * ``all-20`` -- the baseline, a Sobol' initial experiment over all 20 parameters (32 points by
   default: a power of two keeps the Sobol' balance, and 32 > 21 gives the GP more points than
   length-scales before the first proposal, while leaving most of the budget to infill; 2d+1 = 41
@@ -27,7 +31,7 @@ the Prefect flow. Reported per seed and as medians: the regret ``f_best_feasible
 budget, evaluations until within 1 % of the baseline gap (the sled rule of ``benchmarks.infill``),
 the selection and whether it is exactly the physics' active set, and wall time.
 
-    python -m benchmarks.screening --seeds 10 --json benchmarks/results/screening.json
+    python -m benchmarks.screening --seeds 20 --jobs 2 --json benchmarks/results/screening.json
 """
 
 from __future__ import annotations
