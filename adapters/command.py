@@ -30,7 +30,11 @@ from sortie.errors import AdapterError
 
 JOB_FILE = ".sortie-job"  # the solver's process group and start time, for a later orchestrator
 EXIT_FILE = ".solver-exit"  # the solver's exit status, written by the wrapper shell when it ends
-_WRAPPER = f'"$@"; status=$?; echo $status > {EXIT_FILE}; exit $status'
+# The wrapper records the job itself before it runs the solver (then the exit status after it): an
+# orchestrator killed between starting the wrapper and writing a record could otherwise leave a
+# solver that finished with no record, and the case would run twice. Arguments: start time, program...
+_WRAPPER = (f'started=$1; shift; printf \'{{"pgid": %s, "started_at": %s}}\\n\' "$$" "$started" > {JOB_FILE}.tmp '
+            f'&& mv -f {JOB_FILE}.tmp {JOB_FILE}; "$@"; status=$?; echo $status > {EXIT_FILE}; exit $status')
 
 
 class CommandOptions(BaseModel):
@@ -105,13 +109,12 @@ class CommandAdapter:
                 # sh runs the solver as an argument list ("$@", never parsed as shell) and writes
                 # its exit status to a file, so a later orchestrator can collect a solver that
                 # outlived the one that started it.
-                proc = subprocess.Popen(["/bin/sh", "-c", _WRAPPER, "sortie-case", program, *argv[1:]], cwd=workdir,
-                                        stdin=subprocess.DEVNULL, stdout=out, stderr=err, env=env,
+                now = time.time()
+                proc = subprocess.Popen(["/bin/sh", "-c", _WRAPPER, "sortie-case", f"{now:.6f}", program, *argv[1:]],
+                                        cwd=workdir, stdin=subprocess.DEVNULL, stdout=out, stderr=err, env=env,
                                         start_new_session=True)
             except OSError as exc:
                 raise AdapterError(f"solver.command: {program} cannot be started ({exc.strerror}); check it is an executable program") from None
-        now = time.time()
-        (workdir / JOB_FILE).write_text(json.dumps({"pgid": proc.pid, "started_at": now}))
         self._running[case.case_id] = _Running(proc, proc.pid, workdir, time.monotonic() + self.options.timeout_s)
         return JobHandle(case.case_id, str(proc.pid), now, pgid=proc.pid)
 

@@ -510,6 +510,35 @@ def test_a_solver_that_ended_while_no_orchestrator_watched_is_collected_with_its
     assert outcome.failure_class == "solver" and "exited with code 3" in outcome.reason
 
 
+def test_a_solver_whose_orchestrator_died_right_after_starting_it_is_collected_not_run_again(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The orchestrator "dies" the instant the solver's process exists, before it can write
+    # anything: the wrapper itself must have recorded the job, or the finished solver would leave
+    # no record and its case would run twice.
+    real_popen = subprocess.Popen
+
+    def popen_then_die(*args: object, **kwargs: object) -> subprocess.Popen:
+        real_popen(*args, **kwargs)
+        raise KeyboardInterrupt("killed right after starting the solver")
+
+    _template(tmp_path, {})
+    adapter = _adapter(tmp_path, ["/bin/sh", "-c", "echo 'cd = 0.5' > out.txt"], {"cd": QuantitySpec(file="out.txt", key="cd")})
+    case = _case(tmp_path)
+    monkeypatch.setattr("sortie.adapters.command.subprocess.Popen", popen_then_die)
+    with pytest.raises(KeyboardInterrupt):
+        adapter.start(case)
+    monkeypatch.undo()
+    end = time.monotonic() + 5
+    while not (case.workdir / ".solver-exit").exists():
+        assert time.monotonic() < end, "the orphaned solver did not finish"
+        time.sleep(0.01)
+    second = _adapter(tmp_path, adapter.options.command, adapter.quantities)  # a restart that knows no job id
+    attached = second.attach(case, None, None)
+    assert attached is not None, "the finished orphan was found from its own record"
+    assert _run(second, attached) is JobState.DONE
+    assert second.collect(attached, case).quantities == {"cd": 0.5}
+
+
 def test_a_case_folder_without_a_job_record_is_cleaned_and_run_again(tmp_path: Path, reaper: list[int]) -> None:
     adapter, case, handle = _slow(tmp_path)
     (case.workdir / ".sortie-job").unlink()  # as if the orchestrator died before writing it
