@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import signal
 import sys
 from collections.abc import Iterator
 from pathlib import Path
@@ -16,6 +17,13 @@ ROOT = Path(__file__).resolve().parents[1]
 FIXTURES = Path(__file__).resolve().parent / "fixtures"
 DEMO_CONFIG = ROOT / "configs" / "sled-aftbody.yaml"
 BIN = Path(sys.executable).parent
+
+# A shell without job control starts background commands with SIGINT ignored, and children inherit
+# that: the tests' `sortie run` processes would then shrug off the Ctrl-C the tests send them (seen
+# when CI was launched with `... &`). A Python handler here is reset to the default in every child
+# at exec, so each `sortie` process gets Python's usual KeyboardInterrupt whoever started pytest.
+if signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
+    signal.signal(signal.SIGINT, signal.default_int_handler)
 
 
 @pytest.fixture(scope="session")

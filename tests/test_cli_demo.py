@@ -182,14 +182,13 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_finishes_the_campaign(tmp_pat
     assert all(c.attempts == 1 for c in cases if c.id in done_before), "finished cases are never run again"
 
 
-def test_a_campaign_that_cannot_go_on_says_why_in_one_line(tmp_path: Path) -> None:
+def test_a_campaign_that_cannot_go_on_says_why_in_one_line(tmp_path: Path, cli_env: dict[str, str]) -> None:
     from tests.conftest import FIXTURES, branin_config, write_config
 
     config = branin_config(solver={"adapter": "python", "function": f"{FIXTURES / 'models.py'}:always_fails"})
     path = write_config(tmp_path, config)
-    env = {**os.environ, "PREFECT_HOME": str(tmp_path / "prefect-home")}
-    env.pop("PREFECT_API_URL", None)
-    result = sortie("run", str(path), "--dir", str(tmp_path / "camp"), env=env, cwd=tmp_path)
+    # the shared Prefect server: this run's own start-up is not what is tested here
+    result = sortie("run", str(path), "--dir", str(tmp_path / "camp"), env=cli_env, cwd=tmp_path)
     assert result.returncode == 2
     assert "Traceback" not in result.stdout + result.stderr
     errors = [line for line in result.stderr.splitlines() if line.strip()]
