@@ -15,7 +15,7 @@ the inert ones anywhere. Every strategy spends the same number of designs (the b
   screening runs included, feeds the surrogates, projected onto the selected parameters.
   ``--screen-designs N`` changes the screen's size (the trade-off: fewer points leave more
   budget to infill but may keep an inert parameter).
-* ``staged-morris`` -- the same with the demo's first plan (:data:`MORRIS_PLAN`): four Morris
+* ``staged-morris`` -- the same with the demo's first plan (:data:`MORRIS_SCREEN`, :data:`MORRIS_INITIAL`): four Morris
   trajectories (84 designs) and 16 Sobol' points on the selection.
 * ``all-20`` -- the baseline, a Sobol' initial experiment over all 20 parameters (32 points by
   default: a power of two keeps the Sobol' balance, and 32 > 21 gives the GP more points than
@@ -64,8 +64,8 @@ from sortie.space import DesignSpace
 CONFIG = HERE.parent / "configs" / "sled-aftbody-20.yaml"
 STRATEGIES = ("staged", "staged-morris", "all-20")
 # The demo's first plan: 4 Morris trajectories (84 designs), then 16 Sobol' points on the selection.
-MORRIS_PLAN = {"screening": {"method": "morris", "trajectories": 4, "levels": 4, "select": {"fraction": 0.1}},
-               "initial": {"method": "sobol", "designs": 16}}
+MORRIS_SCREEN = ScreeningSpec(method="morris", trajectories=4, levels=4, select={"fraction": 0.1})
+MORRIS_INITIAL = StageSpec(method="sobol", designs=16)
 DEFAULT_BUDGET = 118  # the demo's budget.designs
 DEFAULT_ALL_INITIAL = 32  # see the module docstring
 TARGET_REDUCTION = 0.30  # issue 5: staged has at least 30 % lower median regret
@@ -210,9 +210,8 @@ def run_all(setup: Setup, seed: int) -> SpaceRun:
 
 
 def run_staged_morris(setup: Setup, seed: int) -> SpaceRun:
-    """The staged plan with the Morris screen this demo used before (:data:`MORRIS_PLAN`)."""
-    section = setup.config.plan.model_copy(update={"screening": ScreeningSpec(**MORRIS_PLAN["screening"]),
-                                                   "initial": StageSpec(**MORRIS_PLAN["initial"])})
+    """The staged plan with the Morris screen this demo used before (:data:`MORRIS_SCREEN`, :data:`MORRIS_INITIAL`)."""
+    section = setup.config.plan.model_copy(update={"screening": MORRIS_SCREEN, "initial": MORRIS_INITIAL})
     return run_staged(setup, seed, section)
 
 
@@ -330,7 +329,9 @@ def main() -> None:
     args = parser.parse_args()
     code = code_state()
     setup = load_setup(args.budget, args.all_initial, args.screen_designs)
-    for name, spec in (("staged", setup.config.plan.screening), ("staged-morris", ScreeningSpec(**MORRIS_PLAN["screening"]))):
+    if args.screen_designs is not None and args.screen_designs < setup.space.n_dims + 2:
+        parser.error(f"--screen-designs must be at least {setup.space.n_dims + 2} (free parameters + 2), got {args.screen_designs}")
+    for name, spec in (("staged", setup.config.plan.screening), ("staged-morris", MORRIS_SCREEN)):
         assert spec is not None
         n_screen = spec.n_designs(setup.space.n_dims)
         if name in args.strategies and args.budget <= 1 + n_screen:

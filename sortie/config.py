@@ -236,7 +236,7 @@ class ScreeningSpec(_Section):
     select: SelectSpec = Field(default_factory=lambda: SelectSpec(fraction=0.1))
 
     @model_validator(mode="after")
-    def _levels(self) -> ScreeningSpec:
+    def _options_fit_method(self) -> ScreeningSpec:
         given = self.model_fields_set
         if self.method == "surrogate":
             wrong = [k for k in ("trajectories", "levels") if k in given]

@@ -361,7 +361,7 @@ def surrogate_screening(
     -------
     SurrogateScreen
     """
-    from sortie.surrogate import GaussianProcessSurrogate  # the models module is heavy; screening numbers are not
+    from sortie.surrogate import choose_surrogate  # the models module is heavy; screening numbers are not
 
     X = np.asarray(X, dtype=float)
     Y = np.asarray(y, dtype=float)
@@ -378,10 +378,11 @@ def surrogate_screening(
         n_points[j] = int(ok.sum())
         if n_points[j] < 3:
             continue
-        gp = GaussianProcessSurrogate(n_restarts=4, random_state=seed + j).fit(X[ok], Y[ok, j])
+        # the one-candidate model choice: the fit and its leave-one-out score, as every surrogate gets them
+        gp, (score,) = choose_surrogate(X[ok], Y[ok, j], candidates=["gp"], random_state=seed + j,
+                                        options={"gp": {"n_restarts": 4}})
         models[out_names[j]] = gp
-        spread = float(np.sum((Y[ok, j] - Y[ok, j].mean()) ** 2))
-        loo_r2[j] = 1.0 - float(np.sum(gp.loo_residuals() ** 2)) / spread if spread > 0 else np.nan
+        loo_r2[j] = score.loo_r2
     if not models:
         raise ValueError("no output has 3 or more finished designs; a surrogate screen needs runs that succeeded.")
     fitted = surrogate_sobol_indices(models, n_dims, n_base=n_base, seed=seed, n_resamples=n_resamples, names=names)
