@@ -84,7 +84,8 @@ def test_ei_increases_with_std():
 
 
 def test_ei_obeys_put_call_parity_at_zero_best():
-    # Jones, Schonlau & Welch 1998 via CHECKS.md §3: EI(μ, s) − EI(−μ, s) = −μ when f_min = 0.
+    # Derived, not quoted (CHECKS.md §3 lists it as a property): from the closed form of Jones, Schonlau &
+    # Welch 1998, EI(μ, s) − EI(−μ, s) = −μ Φ(−μ/s) − μ Φ(μ/s) = −μ when f_min = 0, since φ is even.
     mean = np.linspace(-3.0, 3.0, 61)[:, None]
     std = np.array([0.1, 0.5, 1.0, 4.0])[None, :]
     parity = expected_improvement(mean, std, 0.0) - expected_improvement(-mean, std, 0.0)
@@ -375,6 +376,20 @@ def test_maximize_keeps_min_distance_from_an_excluded_optimum():
     assert np.linalg.norm(proposal.x - CENTRE) >= 0.05
     # Every polished run climbs back to the excluded peak, so a raw candidate is returned.
     assert proposal.source == "candidate"
+
+
+def test_maximize_keeps_a_better_raw_candidate_over_a_worse_polished_point_elsewhere():
+    # Two bumps: the higher one's peak is excluded, so every start near it polishes back into the
+    # exclusion; starts near the lower bump reach that bump's peak, which is far enough but lower
+    # than the raw candidates at the edge of the exclusion. The better raw candidate must win.
+    high, low = np.array([0.3, 0.3]), np.array([0.8, 0.8])
+
+    def two_bumps(X):
+        return np.log(np.exp(-((X - high) ** 2).sum(axis=1) / 0.02) + 0.5 * np.exp(-((X - low) ** 2).sum(axis=1) / 0.02))
+
+    proposal = maximize(two_bumps, 2, seed=0, exclude=high[None, :], min_distance=0.05, n_starts=256)
+    assert np.linalg.norm(proposal.x - high) >= 0.05
+    assert proposal.source == "candidate" and proposal.log_score > math.log(0.6)
 
 
 def test_maximize_ignores_exclusions_far_from_the_optimum():

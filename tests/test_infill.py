@@ -161,3 +161,77 @@ def test_classic_optimum_respects_a_predicted_constraint() -> None:
     assert proposal is not None
     assert proposal.x[0] == pytest.approx(0.5, abs=1e-4) and proposal.x[1] == pytest.approx(0.7, abs=1e-3)
     assert math.isclose(proposal.prediction.margins_mean[0], 0.0, abs_tol=1e-6)
+
+
+def test_a_pending_design_is_believed_so_the_next_proposal_goes_elsewhere_without_any_exclusion() -> None:
+    # Kriging believer (Ginsbourger, Le Riche & Carraro 2010): a pending design's predicted value is
+    # taken as observed, so the std, and with it EI, vanish there. With min_distance 0 nothing else
+    # keeps the next proposal off the pending design: without the believer it would be the same point.
+    rng = np.random.default_rng(2)
+    X = np.vstack([rng.random((10, 2)), [0.3, 0.7]])  # the bowl's minimum is observed: f_min = 0
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=3, min_distance=0.0, cycle=(Step(1.0),),
+                              refine_improvements=False)
+    alone = propose_infill(_history(X, _quadratic(X)), settings, seed=5)
+    assert alone is not None and alone.incumbent == 0.0
+    # An exploratory proposal: its mean is above f_min, so its EI comes from the std alone.
+    assert alone.prediction.objective_mean > alone.incumbent and alone.expected_improvement > 1e-3
+    after = propose_infill(_history(X, _quadratic(X), pending=alone.x[None, :]), settings, seed=5)
+    assert after is not None
+    assert np.linalg.norm(after.x - alone.x) > 0.05
+    assert after.expected_improvement < 0.2 * alone.expected_improvement
+    # Pending designs on a grid over the whole square leave almost no std, hence almost no EI, anywhere.
+    grid = np.array([[i / 10, j / 10] for i in range(11) for j in range(11)])
+    covered = propose_infill(_history(X, _quadratic(X), pending=grid), settings, seed=5)
+    assert covered is not None and covered.expected_improvement < 0.05 * alone.expected_improvement
+
+
+@pytest.mark.parametrize("rule", ["best-observed", "best-predicted"])
+def test_an_infeasible_design_better_than_every_feasible_one_is_not_the_incumbent(rule: str) -> None:
+    # f_min is taken over feasible designs only (Schonlau, Welch & Jones 1998, constrained EI).
+    rng = np.random.default_rng(4)
+    X = np.vstack([rng.random((14, 2)) * [0.5, 1.0] + [0.5, 0.0], [0.3, 0.7]])  # the last one: the bowl's minimum
+    y = _quadratic(X)
+    margins = (0.45 - X[:, 0])[:, None]  # feasible only where x0 >= 0.45: the minimum design is infeasible
+    assert margins[-1, 0] > 0 and (margins[:-1, 0] <= 0).all() and y[-1] < y[:-1].min() - 0.03
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=3, incumbent=rule)
+    proposal = propose_infill(_history(X, y, margins=margins), settings, seed=0)
+    assert proposal is not None and proposal.incumbent is not None
+    if rule == "best-observed":
+        assert proposal.incumbent == pytest.approx(y[:-1].min(), abs=1e-12)
+    else:
+        assert proposal.incumbent > y[:-1].min() - 0.01  # the GP mean at feasible designs, near their values
+
+
+@pytest.mark.parametrize("seed", [0, 2, 4, 6])
+def test_a_failed_design_lowers_expected_improvement_as_a_pessimistic_value_would(seed: int) -> None:
+    # Penalised imputation (Forrester, Sóbester & Keane 2006): the objective model is conditioned
+    # on the mean plus one std at a failed design, which raises the mean near it and lowers the std,
+    # so the best EI left is below the best EI before the failure (an optimistic value raises it).
+    rng = np.random.default_rng(seed)
+    X = rng.random((12, 2))
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=3, cycle=(Step(1.0),), refine_improvements=False)
+    before = propose_infill(_history(X, _quadratic(X)), settings, seed=5)
+    assert before is not None
+    failed = np.vstack([X, before.x])  # the design EI wanted most, and the solver failed on it
+    after = propose_infill(_history(failed, np.append(_quadratic(X), np.nan),
+                                    succeeded=np.append(np.ones(len(X), bool), False)), settings, seed=5)
+    assert after is not None
+    assert after.expected_improvement < before.expected_improvement
+
+
+@pytest.mark.parametrize("towards", ["lower", "upper"])
+def test_a_local_step_stays_in_its_box_even_when_the_minimum_lies_outside(towards: str) -> None:
+    # The designs lie on one side of the bowl (x0 >= 0.55, or its mirror x0 <= 0.45) and the newest is
+    # the best, so the next step is local; EI would rather go towards the bowl's minimum, out of the box.
+    rng = np.random.default_rng(3)
+    X = rng.random((12, 2)) * [0.45, 1.0] + [0.55, 0.0]
+    centre = np.array([0.3, 0.7])
+    if towards == "upper":
+        X, centre = 1.0 - X, 1.0 - centre
+    y = np.sum((X - centre) ** 2, axis=1)
+    order = np.argsort(-y)  # the best design last: it has just improved the best
+    X, y = X[order], y[order]
+    settings = InfillSettings(models=("gp",), candidates=256, restarts=3, cycle=(Step(1.0),), local_radius=0.05)
+    proposal = propose_infill(_history(X, y), settings, seed=0)
+    assert proposal is not None and proposal.local
+    assert np.all(np.abs(proposal.x - X[-1]) <= settings.local_radius + 1e-12)

@@ -27,8 +27,9 @@ from sortie.sampling import (
     sobol,
 )
 
-# Montgomery, Design and Analysis of Experiments, Table 11.11 via Penn State STAT 503 §11.2.1
-# (CHECKS.md §1): k, fraction, n_F, n_A, α rotatable (4 d.p., [N]), N without centre points, p.
+# Computed columns, not a published table (CHECKS.md §1 [N]): k, fraction, n_F = 2^k (2^(k−1) for the
+# half fraction), n_A = 2k, α rotatable = n_F^(1/4) to 4 d.p., N = n_F + n_A without centre points,
+# p = (k+1)(k+2)/2. Only the α formula is confirmed in a source: Penn State STAT 503 §11.2.1.
 CCD_TABLE = [
     (2, None, 4, 4, 1.4142, 8, 6),
     (3, None, 8, 6, 1.6818, 14, 10),
@@ -61,10 +62,10 @@ def test_ccd_run_counts_and_alpha_match_published_table(
     k, fraction, n_f, n_a, alpha, n_no_centre, p
 ):
     design = central_composite(k, fraction=fraction, center_points=0)
-    # CHECKS.md §1 table (Montgomery Table 11.11 via PSU STAT 503 §11.2.1): N = n_F + 2k.
+    # CHECKS.md §1, computed [N]: N = n_F + 2k.
     assert design.shape == (n_no_centre, k)
     assert n_f + n_a == n_no_centre
-    # CHECKS.md §1 α column: α = n_F^(1/4), [N] to 4 d.p.
+    # α = n_F^(1/4): Penn State STAT 503 §11.2.1 (CHECKS.md §1); the values are [N] to 4 d.p.
     assert rotatable_alpha(n_f) == pytest.approx(alpha, abs=5e-5)
     assert np.max(np.abs(design)) == pytest.approx(alpha, abs=5e-5)
     # CHECKS.md §1 last column: p = (k+1)(k+2)/2 quadratic terms, and a CCD has enough runs.
@@ -113,8 +114,8 @@ def _fourth_moments(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 @pytest.mark.parametrize("variant", ["circumscribed", "inscribed"])
 @pytest.mark.parametrize(("k", "fraction"), [(k, frac) for k, frac, *_ in CCD_TABLE], ids=CCD_IDS)
 def test_rotatable_alpha_satisfies_fourth_moment_condition(k, fraction, variant):
-    # CHECKS.md §1 (Box & Hunter 1957): rotatable iff Σx_i⁴ = 3Σx_i²x_j² over the non-centre
-    # points, i.e. n_F + 2α⁴ = 3n_F.
+    # Rotatable iff Σx_i⁴ = 3Σx_i²x_j² over the non-centre points, i.e. n_F + 2α⁴ = 3n_F (CHECKS.md §1;
+    # attributed to Box & Hunter 1957, Ann. Math. Stat. 28:195–241, from memory).
     design = central_composite(k, variant=variant, fraction=fraction, center_points=3)
     non_centre = design[np.any(design != 0.0, axis=1)]
     pure, mixed = _fourth_moments(non_centre)
@@ -176,7 +177,8 @@ def test_half_fraction_k5_is_sixteen_runs_of_resolution_five():
 
 
 def test_half_fraction_k5_keeps_main_effects_and_two_factor_interactions_unaliased():
-    # Resolution V (Montgomery, DAE, fractional factorial chapter): no main effect or 2FI is
+    # Resolution V (Montgomery, Design and Analysis of Experiments, fractional factorial chapter;
+    # from memory, edition and section not checked): no main effect or 2FI is
     # aliased with another main effect or 2FI, so their columns are mutually orthogonal.
     design = fractional_factorial(5)
     mains = [design[:, i] for i in range(5)]
@@ -217,7 +219,8 @@ def test_full_factorial_has_every_combination_once(levels, n_runs):
 
 
 def test_full_factorial_is_in_standard_order():
-    # Standard (Yates) order: the first factor alternates fastest (Montgomery, DAE).
+    # Standard (Yates) order: the first factor alternates fastest (common practice; Montgomery, Design and
+    # Analysis of Experiments, from memory, edition and table not checked).
     np.testing.assert_array_equal(
         full_factorial([2, 2]), [[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [1.0, 1.0]]
     )
@@ -235,6 +238,13 @@ def test_lhs_has_one_point_per_stratum(n, d, optimization):
     assert x.dtype == np.float64
     for column in x.T:
         np.testing.assert_array_equal(np.sort(np.floor(n * column)), np.arange(n))
+
+
+def test_lhs_points_lie_at_random_places_inside_their_strata_not_at_the_centres():
+    # McKay, Beckman & Conover 1979 draw each point uniformly inside its stratum; the offsets
+    # n·x − floor(n·x) of 200 points should then look uniform on [0, 1), not all sit at 0.5.
+    offsets = np.modf(200 * latin_hypercube(200, 2, seed=8))[0].ravel()
+    assert offsets.std() > 0.2 and abs(offsets.mean() - 0.5) < 0.1
 
 
 def test_lhs_with_random_cd_has_lower_discrepancy_than_uniform_random_points():

@@ -27,7 +27,7 @@ from sortie.screening import (
 
 @pytest.mark.parametrize(("levels", "delta"), [(4, 2 / 3), (6, 0.6), (8, 4 / 7)])
 def test_morris_delta_is_p_over_2_p_minus_1(levels, delta):
-    # Morris 1991, Technometrics 33(2): Δ = p/[2(p − 1)], so Δ = 2/3 for p = 4 (CHECKS.md §5).
+    # Morris 1991, Technometrics 33(2): Δ = p/[2(p − 1)], so Δ = 2/3 for p = 4 (CHECKS.md §5, from memory).
     assert morris_delta(levels) == pytest.approx(delta, abs=1e-15)
 
 
@@ -40,7 +40,7 @@ def test_morris_delta_rejects_odd_or_too_few_levels(levels):
 @pytest.mark.parametrize(("k", "r", "levels"), [(1, 3, 4), (5, 6, 4), (7, 4, 6), (3, 5, 2)])
 def test_morris_design_moves_each_coordinate_once_by_delta_on_the_grid(k, r, levels):
     X = morris_trajectories(k, r, levels=levels, seed=3)
-    # Cost r(k + 1) runs: Morris 1991 (CHECKS.md §5).
+    # Cost r(k + 1) runs: CHECKS.md §5 (the JRC screening description; Morris 1991, from memory).
     assert X.shape == (r * (k + 1), k)
     grid = np.arange(levels) / (levels - 1)
     assert np.all(np.min(np.abs(X[:, :, None] - grid), axis=2) < 1e-12)
@@ -71,7 +71,7 @@ def _pool(k: int, count: int, seed: int) -> np.ndarray:
 
 
 def test_spread_selection_beats_random_choice_from_the_same_pool():
-    # Campolongo, Cariboni & Saltelli 2007: choosing r of M trajectories for spread (CHECKS.md §5).
+    # Campolongo, Cariboni & Saltelli 2007 (citation from memory): choosing r of M trajectories for spread (CHECKS.md §5).
     k, r, m = 6, 8, 60
     pool = _pool(k, m, seed=5)
     chosen = select_trajectories(pool, r)

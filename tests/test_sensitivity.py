@@ -25,7 +25,7 @@ from sortie.surrogate import GaussianProcessSurrogate
 # Ishigami, a = 7, b = 0.1 (Ishigami & Homma 1990; analytic values, CHECKS.md §5 table).
 ISHIGAMI_S = [0.3139051911478115, 0.4424111447900409, 0.0]
 ISHIGAMI_ST = [0.5575888552099592, 0.4424111447900409, 0.2436836640621477]
-# Sobol' g-function, a = (0, 1, 4.5, 9, 99, 99, 99, 99) (Saltelli & Sobol' 1995; CHECKS.md §5 table).
+# Sobol' g-function, a = (0, 1, 4.5, 9, 99, 99, 99, 99) (Saltelli & Sobol' 1995, from memory; CHECKS.md §5 table [N]).
 G_A = [0, 1, 4.5, 9, 99, 99, 99, 99]
 G_S = [0.716192, 0.179048, 0.023676, 0.007162] + [7.162e-5] * 4
 G_ST = [0.787144, 0.242198, 0.034317, 0.010460] + [1.0495e-4] * 4
@@ -39,9 +39,9 @@ def ishigami_estimate():
 # --------------------------------------------------------------------------- analytic helpers
 
 
-def test_ishigami_analytic_indices_match_the_published_table():
+def test_ishigami_analytic_indices_match_the_analytic_values():
     ref = ishigami_indices()
-    # CHECKS.md §5: E = 3.5, V = 13.844587940719254 and the S, ST table (Sobol' & Levitan 1999 formulas).
+    # CHECKS.md §5 [N], analytic (derivation per Sobol' & Levitan 1999): E = 3.5, V = 13.844587940719254, S, ST.
     assert ref.mean == 3.5
     assert ref.variance == pytest.approx(13.844587940719254, rel=1e-14)
     np.testing.assert_allclose(ref.first_order, ISHIGAMI_S, atol=1e-14)
@@ -62,7 +62,7 @@ def test_g_function_analytic_indices_match_the_published_table():
 
 def test_analytic_functions_have_the_published_means():
     X = latin_hypercube(2**14, 8, seed=0)
-    # CHECKS.md §5: E[ishigami] = a/2 = 3.5, E[g] = 1 (Saltelli & Sobol' 1995).
+    # CHECKS.md §5: E[ishigami] = a/2 = 3.5 [N], E[g] = 1 (SFU gfunc page; Saltelli & Sobol' 1995 from memory).
     assert np.mean(ishigami(X[:, :3])) == pytest.approx(3.5, abs=0.05)
     assert np.mean(g_function(X, G_A)) == pytest.approx(1.0, abs=0.01)
 
@@ -103,7 +103,7 @@ def test_morris_sees_ishigami_x3_whose_first_order_index_is_zero(ishigami_estima
 
 def test_g_function_indices_are_close_to_analytic_and_ranked_right():
     res = sobol_indices(lambda X: g_function(X, G_A), 8, n_base=4096, seed=1, n_resamples=0)
-    # CHECKS.md §5 table (Saltelli & Sobol' 1995), a = (0, 1, 4.5, 9, 99, 99, 99, 99).
+    # CHECKS.md §5 table [N] (Saltelli & Sobol' 1995, from memory), a = (0, 1, 4.5, 9, 99, 99, 99, 99).
     np.testing.assert_allclose(res.first_order[:, 0], G_S, atol=0.01)
     np.testing.assert_allclose(res.total_order[:, 0], G_ST, atol=0.01)
     for index in (res.first_order[:, 0], res.total_order[:, 0]):
@@ -113,7 +113,7 @@ def test_g_function_indices_are_close_to_analytic_and_ranked_right():
 
 
 def test_additive_function_has_equal_first_and_total_indices():
-    # Sobol' 1993 decomposition: y = Σ cᵢ uᵢ with uniform uᵢ has Vᵢ = cᵢ²/12 and no interaction.
+    # Derived: y = Σ cᵢ uᵢ with independent uniform uᵢ has Vᵢ = cᵢ²/12 (variance of U[0, 1]) and no interaction.
     c = np.array([1.0, 2.0, 3.0])
     res = sobol_indices(lambda X: X @ c, 3, n_base=1024, seed=0, n_resamples=0)
     np.testing.assert_allclose(res.first_order[:, 0], c**2 / np.sum(c**2), atol=5e-3)
@@ -203,7 +203,7 @@ def test_surrogate_screen_ranks_the_g_function_and_finds_its_inert_inputs():
     X = sobol(128, 8, seed=3)
     found = surrogate_screening(X, g_function(X, G_A), seed=0, n_resamples=0)
     root = found.importance[:, 0]
-    # Square roots of the analytic total indices, Saltelli & Sobol' 1995, CHECKS.md §5
+    # Square roots of the analytic total indices, CHECKS.md §5 [N] (Saltelli & Sobol' 1995, from memory)
     # (S_T = 0.787, 0.242, 0.034, 0.010, then 1e-4 each), within the GP's error on 128 points.
     np.testing.assert_allclose(root[:3], np.sqrt(G_ST[:3]), atol=0.05)
     assert list(np.argsort(-root)[:3]) == [0, 1, 2]

@@ -55,7 +55,7 @@ def _quadratic_in_coded_units(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def test_quadratic_press_residuals_equal_explicit_leave_one_out_refits():
-    # Allen 1974; Myers & Montgomery 2002 pp. 46–47 via CHECKS.md §6: e_i/(1 − h_ii) = y_i − ŷ_(i) exactly.
+    # Myers & Montgomery 2002 pp. 46–47 via CHECKS.md §6 (Allen 1974 from memory): e_i/(1 − h_ii) = y_i − ŷ_(i) exactly.
     X = _lhs(16, 2)
     y = _smooth(X) + 0.05 * np.random.default_rng(SEED).standard_normal(16)
     model = QuadraticSurface().fit(X, y)
@@ -79,7 +79,7 @@ def test_quadratic_recovers_an_exact_quadratic_and_has_zero_press():
 
 
 def test_quadratic_std_is_the_standard_error_of_the_fitted_mean():
-    # Myers & Montgomery 2002: se(ŷ(x)) = sqrt(s² x (XᵀX)⁻¹ xᵀ), here with an explicit inverse as the reference.
+    # Myers & Montgomery 2002, from memory: se(ŷ(x)) = sqrt(s² x (XᵀX)⁻¹ xᵀ), here with an explicit inverse as the reference.
     X = _lhs(14, 2)
     y = _smooth(X)
     model = QuadraticSurface().fit(X, y)
@@ -237,7 +237,9 @@ def test_gp_keeps_convergence_warnings_instead_of_printing_them(recwarn):
 
 
 def test_gp_retries_a_failed_cholesky_with_more_jitter(monkeypatch):
-    # gp.md §1: a failed Cholesky is retried with alpha x 100 up to 1e-4, then reported.
+    # The project's own rule (sortie.surrogate): a failed Cholesky is retried with alpha x 100 up to 1e-4,
+    # then reported. gp.md §1 suggests x 10 up to about 1e-4, after scikit-learn's LinAlgError advice;
+    # no outside number is checked here.
     import sortie.surrogate as surrogate
 
     class FailsBelow(GaussianProcessRegressor):
@@ -260,7 +262,7 @@ def test_gp_retries_a_failed_cholesky_with_more_jitter(monkeypatch):
 
 @pytest.mark.parametrize("noise", [True, False])
 def test_gp_likelihood_and_gradient_equal_scikit_learns(noise):
-    # The hand-written gradient (R&W 2006 eq. 5.9, contracted without the n x n x p tensor) must
+    # The hand-written gradient (Rasmussen & Williams 2006 eq. 5.9, from memory; contracted without the n x n x p tensor) must
     # equal scikit-learn's generic one for the same kernel; without a prior the value is -LML.
     rng = np.random.default_rng(SEED)
     X = _lhs(30, 3)
