@@ -61,7 +61,7 @@ def log_h_series(z: np.ndarray, n_terms: int = 9) -> np.ndarray:
         (0.0, 2.0, 1.0, 1.3955931148026122),
     ],
 )
-def test_ei_matches_published_values(mean, std, best, expected):
+def test_ei_matches_the_recomputed_values(mean, std, best, expected):
     assert expected_improvement(mean, std, best) == pytest.approx(expected, rel=1e-14)
     assert log_expected_improvement(mean, std, best) == pytest.approx(math.log(expected), rel=1e-14)
 
@@ -208,8 +208,9 @@ def test_log_ei_is_minus_inf_only_where_std_is_zero_and_there_is_no_gap():
 # --------------------------------------------------------------------------- feasibility
 
 
-def test_probability_of_feasibility_matches_published_value():
-    # Schonlau, Welch & Jones 1998 via CHECKS.md §3: ĝ = −0.5, s_g = 1 → Φ(0.5).
+def test_probability_of_feasibility_matches_the_recomputed_value():
+    # CHECKS.md §3: ĝ = −0.5, s_g = 1 → Φ(0.5), recomputed [N]; the formula P = Φ(−ĝ/s_g) is Schonlau,
+    # Welch & Jones 1998 from memory (only their abstract was seen).
     assert probability_of_feasibility(-0.5, 1.0) == pytest.approx(0.6914624612740131, rel=1e-14)
     assert log_probability_of_feasibility(-0.5, 1.0) == pytest.approx(math.log(0.6914624612740131), rel=1e-14)
 

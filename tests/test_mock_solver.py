@@ -100,7 +100,7 @@ def random_designs(n: int, seed: int) -> dict[str, np.ndarray]:
 @pytest.mark.parametrize(
     ("mach", "factor"), [(0.3, 1.04828), (0.5, 1.15470), (0.7, 1.40028), (0.8, 1.66667)]
 )
-def test_prandtl_glauert_factor_matches_published_values(mach: float, factor: float) -> None:
+def test_prandtl_glauert_factor_matches_the_recomputed_values(mach: float, factor: float) -> None:
     # CHECKS.md §7: values recomputed from 1/√(1 − M²) [N]; the rule is Glauert 1928, Proc. R. Soc. A
     # 118:113, and Anderson, Fundamentals of Aerodynamics ch. 11 (both citations from memory).
     assert physics.prandtl_glauert(mach) == pytest.approx(factor, abs=5e-6)
@@ -109,7 +109,7 @@ def test_prandtl_glauert_factor_matches_published_values(mach: float, factor: fl
 @pytest.mark.parametrize(
     ("mach", "slope"), [(math.sqrt(2.0), 4.0), (1.5, 3.57771), (2.0, 2.30940), (3.0, 1.41421)]
 )
-def test_ackeret_lift_slope_matches_published_values(mach: float, slope: float) -> None:
+def test_ackeret_lift_slope_matches_the_recomputed_values(mach: float, slope: float) -> None:
     # CHECKS.md §7: c_l = 4α/√(M² − 1), values recomputed [N]; Ackeret 1925, ZFM 16:72 and Anderson
     # ch. 12 are cited from memory (the formula was seen only on calculator pages).
     assert physics.ackeret_lift_slope(mach) == pytest.approx(slope, abs=5e-6)
@@ -139,7 +139,7 @@ def test_ackeret_lift_agrees_with_shock_expansion_theory_on_a_diamond_section(
         (0.8, -1.000000, -0.833333),
     ],
 )
-def test_karman_tsien_matches_published_values(mach: float, cp_kt: float, cp_pg: float) -> None:
+def test_karman_tsien_matches_the_recomputed_values(mach: float, cp_kt: float, cp_pg: float) -> None:
     # CHECKS.md §7: Cp0 = −0.5, both columns recomputed from the formulas [N]; the Kármán–Tsien rule is
     # von Kármán 1941, J. Aeronaut. Sci. 8:337 and Tsien 1939, J. Aeronaut. Sci. 6:399 (from memory).
     assert physics.karman_tsien(-0.5, mach) == pytest.approx(cp_kt, abs=5e-6)
@@ -149,13 +149,13 @@ def test_karman_tsien_matches_published_values(mach: float, cp_kt: float, cp_pg:
 @pytest.mark.parametrize(
     ("mach", "cp_star"), [(0.6, -1.29434), (0.7, -0.77907), (0.8, -0.43464), (1.0, 0.0)]
 )
-def test_critical_cp_matches_published_values(mach: float, cp_star: float) -> None:
+def test_critical_cp_matches_the_recomputed_values(mach: float, cp_star: float) -> None:
     # CHECKS.md §7: Cp* recomputed from the isentropic formula (γ = 1.4) [N]; "Anderson, Fundamentals
     # of Aerodynamics eq. ≈11.60" is from memory (equation number not checked).
     assert physics.critical_cp(mach) == pytest.approx(cp_star, abs=5e-6)
 
 
-def test_korn_and_lock_give_published_example() -> None:
+def test_korn_and_lock_give_the_recomputed_example() -> None:
     # CHECKS.md §7, from memory: the Korn equation (Korn 1975; Mason's notes) and Lock's
     # 20(M − M_crit)⁴ rise, constants not checked against the sources. The example numbers are
     # recomputed [N]: κ_A = 0.95, t/c 0.12, c_l 0.5 → M_DD 0.780; slope 0.1 at M_DD → M_crit 0.672.
@@ -168,7 +168,7 @@ def test_korn_and_lock_give_published_example() -> None:
     assert physics.lock_drag_rise(0.6, m_crit) == 0.0
 
 
-def test_karman_tsien_critical_mach_matches_published_example() -> None:
+def test_karman_tsien_critical_mach_matches_the_recomputed_example() -> None:
     # CHECKS.md §7: Cp0,min = −0.43 (NACA 0012 at α = 0, Anderson's example, from memory) → M_cr =
     # 0.723 with Kármán–Tsien, recomputed [N] (Anderson's text quotes about 0.74, also from memory)
     assert physics.karman_tsien_critical_mach(-0.43) == pytest.approx(0.723, abs=5e-4)

@@ -58,7 +58,7 @@ def _split_ccd(design: np.ndarray, n_factorial: int, n_dims: int):
 @pytest.mark.parametrize(
     ("k", "fraction", "n_f", "n_a", "alpha", "n_no_centre", "p"), CCD_TABLE, ids=CCD_IDS
 )
-def test_ccd_run_counts_and_alpha_match_published_table(
+def test_ccd_run_counts_and_alpha_match_the_computed_table(
     k, fraction, n_f, n_a, alpha, n_no_centre, p
 ):
     design = central_composite(k, fraction=fraction, center_points=0)
@@ -232,7 +232,8 @@ def test_full_factorial_is_in_standard_order():
 @pytest.mark.parametrize("optimization", [None, "random-cd"])
 @pytest.mark.parametrize(("n", "d"), [(1, 1), (7, 3), (50, 6)])
 def test_lhs_has_one_point_per_stratum(n, d, optimization):
-    # McKay, Beckman & Conover 1979; CHECKS.md §8: floor(n·x[:,j]) is a permutation of 0..n−1.
+    # CHECKS.md §8 (definition as in scipy's qmc.LatinHypercube docs; McKay, Beckman & Conover 1979 cited
+    # from memory): floor(n·x[:,j]) is a permutation of 0..n−1.
     x = latin_hypercube(n, d, seed=3, optimization=optimization)
     assert x.shape == (n, d)
     assert x.dtype == np.float64
@@ -241,7 +242,8 @@ def test_lhs_has_one_point_per_stratum(n, d, optimization):
 
 
 def test_lhs_points_lie_at_random_places_inside_their_strata_not_at_the_centres():
-    # McKay, Beckman & Conover 1979 draw each point uniformly inside its stratum; the offsets
+    # Each point is drawn uniformly inside its stratum (scipy's qmc.LatinHypercube docs, scramble=True;
+    # McKay, Beckman & Conover 1979, from memory); the offsets
     # n·x − floor(n·x) of 200 points should then look uniform on [0, 1), not all sit at 0.5.
     offsets = np.modf(200 * latin_hypercube(200, 2, seed=8))[0].ravel()
     assert offsets.std() > 0.2 and abs(offsets.mean() - 0.5) < 0.1
@@ -305,7 +307,7 @@ def test_sobol_does_not_warn_for_a_power_of_two():
 
 def test_sobol_points_stratify_dyadic_intervals():
     # Balance of a (t, m, s)-net: each of the 2^m equal intervals in every coordinate holds one
-    # of the first 2^m points (Sobol' 1967; holds after LMS + digital-shift scrambling).
+    # of the first 2^m points (Sobol' 1967, from memory; holds after LMS + digital-shift scrambling).
     n = 32
     x = sobol(n, 4, seed=9)
     for column in x.T:

@@ -166,7 +166,7 @@ def gp_2d() -> tuple[GaussianProcessSurrogate, np.ndarray, np.ndarray]:
 
 
 def test_gp_loo_closed_form_equals_refits_with_the_kernel_held_fixed(gp_2d):
-    # Rasmussen & Williams 2006 eqs. 5.10–5.12 with fixed hyper-parameters and normalisation (gp.md §5).
+    # Rasmussen & Williams 2006 eq. 5.12 (gp.md §5; eqs. 5.10–5.11 from memory), fixed hyper-parameters and normalisation.
     gp, X, y = gp_2d
     y_norm = (y - gp.y_mean_) / gp.y_std_
     resid, var = [], []
