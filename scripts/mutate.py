@@ -1,7 +1,8 @@
 """Apply named one-line mutations to a scratch copy of the project and see whether the fast tests catch each.
 
-A tool, not a test: it takes a few minutes, so CI does not run it (``tests/test_mutate_script.py``
-only checks that every snippet below still matches the code exactly once).
+A tool, not a test: 25 mutations take about 9 minutes on a busy 2-core machine, so CI does not run
+it (``tests/test_mutate_script.py`` only checks that every snippet below still matches the code
+exactly once).
 
     .venv/bin/python scripts/mutate.py                      # every mutation, a table at the end
     .venv/bin/python scripts/mutate.py --only goal-mean-median --json out.json
@@ -81,6 +82,9 @@ MUTATIONS: tuple[Mutation, ...] = (
              "upper = np.clip(centre + settings.local_radius, 0.0, 1.0)",
              "upper = np.clip(centre + 3 * settings.local_radius, 0.0, 1.0)",
              ("tests/test_infill.py",), why="the local step searches beyond its box"),
+    Mutation("infill-refine-the-wrong-design", "sortie/infill.py",
+             "best is not None and best[1] == len(history.X) - 1:", "best is not None and best[1] == len(history.X) - 2:",
+             ("tests/test_infill.py",), why="a local refinement follows the design before the one that improved the best"),
     # --- acquisition ----------------------------------------------------------------------------
     Mutation("acquisition-ei-half-exploration", "sortie/acquisition.py",
              "gap * ndtr(z) + std * _normal_pdf(z)", "gap * ndtr(z) + 0.5 * std * _normal_pdf(z)",
@@ -99,6 +103,10 @@ MUTATIONS: tuple[Mutation, ...] = (
     Mutation("goal-zero-margin-infeasible", "sortie/goal.py",
              "feasible = all(m <= 0.0 for m in margins.values())", "feasible = all(m < 0.0 for m in margins.values())",
              ("tests/test_goal.py",), why="a design exactly on a constraint boundary counted infeasible"),
+    Mutation("goal-attribute-access-allowed", "sortie/goal.py",
+             "if not (isinstance(node.value, ast.Name) and node.value.id == BASELINE):",
+             "if not isinstance(node.value, ast.Name):", ("tests/test_goal.py",),
+             why="any name.attribute is read as a baseline quantity instead of being refused"),
     # --- ledger ---------------------------------------------------------------------------------
     Mutation("ledger-attempt-number-not-incremented", "sortie/ledger.py",
              'number = int(row["attempts"]) + 1', 'number = int(row["attempts"])', ("tests/test_ledger.py",)),
