@@ -90,7 +90,7 @@ Float = float | NDArray[np.float64]
 
 
 def prandtl_glauert(mach: ArrayLike) -> Float:
-    """Prandtl–Glauert factor 1/√(1 − M²) for subsonic Mach (Glauert 1928).
+    """Prandtl–Glauert factor 1/√(1 − M²) for subsonic Mach (Glauert 1928, from memory).
 
     Multiplies incompressible pressure and lift coefficients. Singular at M = 1, which is why the
     solver itself uses :func:`compressibility_factor` instead.
@@ -102,7 +102,7 @@ def prandtl_glauert(mach: ArrayLike) -> Float:
 
 
 def ackeret(mach: ArrayLike) -> Float:
-    """Ackeret factor 1/√(M² − 1) for supersonic Mach (Ackeret 1925).
+    """Ackeret factor 1/√(M² − 1) for supersonic Mach (Ackeret 1925, from memory).
 
     The supersonic thin-airfoil lift slope is 4 times this (see :func:`ackeret_lift_slope`).
     """
@@ -118,7 +118,7 @@ def ackeret_lift_slope(mach: ArrayLike) -> Float:
 
 
 def karman_tsien(cp0: ArrayLike, mach: ArrayLike) -> Float:
-    """Kármán–Tsien compressible pressure coefficient from the incompressible one.
+    """Kármán–Tsien compressible pressure coefficient from the incompressible one (from memory).
 
     Cp = Cp0 / [β + M²/(1 + β) · Cp0/2] with β = √(1 − M²). Better than Prandtl–Glauert for the
     strong suction peaks that drive the underbody downforce.
@@ -177,7 +177,7 @@ def lock_drag_rise(mach: ArrayLike, mach_crit: ArrayLike) -> Float:
 
 
 def korn_drag_divergence(thickness_ratio: ArrayLike, lift: ArrayLike, kappa: float = 0.95) -> Float:
-    """Korn equation for an unswept section: M_DD = κ − t/c − c_l/10.
+    """Korn equation for an unswept section: M_DD = κ − t/c − c_l/10 (from memory).
 
     κ = 0.95 is the supercritical-section technology factor. With Lock's rise the critical Mach is
     M_DD − (0.1/80)^(1/3), which :func:`korn_lock_critical_mach` applies.
