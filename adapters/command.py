@@ -109,8 +109,7 @@ class CommandAdapter:
         return rendering_problems(template, options.render, cases, lambda case: _argv(options, case.context()))
 
     def start(self, case: CaseSpec) -> JobHandle:
-        # absolute: the solver runs with the case folder as its working directory, whatever ours is
-        workdir = Path(case.workdir).resolve()
+        workdir = Path(case.workdir)  # absolute (CaseSpec), so the solver finds ./solver.py from its folder
         if workdir.exists():
             shutil.rmtree(workdir)  # a fresh attempt starts from the template, never from leftovers
         workdir.mkdir(parents=True)
