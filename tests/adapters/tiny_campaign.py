@@ -40,7 +40,8 @@ def write_campaign(folder: Path, *, deck: str = DECK, solver: dict[str, Any] | N
                    name: str = "tiny") -> Path:
     """Write ``campaign.yaml`` and its ``template/`` into ``folder``; return the config path.
 
-    ``solver`` entries replace the defaults (the command adapter running ``./solver.py out.txt``).
+    ``solver`` entries replace the defaults (the command adapter running ``./solver.py out.txt``);
+    an entry set to None removes that key.
     The plan is the baseline plus ``designs`` Latin-hypercube designs, at two conditions.
     """
     write_template(folder / "template", deck)
@@ -49,8 +50,9 @@ def write_campaign(folder: Path, *, deck: str = DECK, solver: dict[str, Any] | N
         "parameters": {"ramp_angle": {"lower": 2.0, "upper": 14.0, "baseline": 8.0},
                        "fin_count": {"choices": [2, 3, 4], "baseline": 3}},
         "conditions": {"mach": [0.6, 1.1]},
-        "solver": {"adapter": "command", "template": "template", "command": ["./solver.py", "out.txt"],
-                   "timeout_s": 60, **(solver or {})},
+        "solver": {key: value for key, value in {
+            "adapter": "command", "template": "template", "command": ["./solver.py", "out.txt"], "timeout_s": 60,
+            **(solver or {})}.items() if value is not None},
         "quantities": {"lift": {"file": "out.txt", "key": "lift"}},
         "goal": {"minimize": "max(lift)"},
         "plan": {"initial": {"method": "lhs", "designs": designs}},
