@@ -96,9 +96,12 @@ def _render(env: jinja2.Environment, text: str, context: Mapping[str, Any], wher
         known = ", ".join(sorted(context))
         raise TemplateError(f"{where}{_line(err)}: {err.message}; placeholders available: {known}") from None
     except jinja2.sandbox.SecurityError as err:
-        raise TemplateError(f"{where}{_line(err)}: refused by the template sandbox ({err}); templates may use "
+        raise TemplateError(f"{where}{_line(err)}: refused by the template sandbox ({str(err).rstrip('.')}); templates may use "
                             "values, filters and tests, not Python internals") from None
     except Exception as err:  # the template's own expression failed (1/0, 'a' + 1, a refused shell value ...)
+        if "no loader" in str(err):
+            raise TemplateError(f"{where}{_line(err)}: include, import and extends are not available; each template "
+                                "file is rendered on its own (use a macro in the same file)") from None
         raise TemplateError(f"{where}{_line(err)}: {type(err).__name__}: {str(err)[:200]}") from None
 
 
