@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import contextlib
 import fnmatch
+import math
 import os
 import shlex
 import shutil
@@ -48,8 +49,31 @@ class TemplateError(AdapterError):
     """A template that cannot be rendered for a case: one line naming the file (or key) and line."""
 
 
+#: Longest text or list ``*`` may build, and most bits ``**`` may give an integer: a template must
+#: not take a run's memory or time (``{{ 'x' * 10**10 }}``, ``{{ 10 ** 10 ** 10 }}``).
+MAX_REPEAT = 10_000_000
+MAX_POWER_BITS = 100_000
+
+
+class _Sandbox(ImmutableSandboxedEnvironment):
+    """Jinja2's immutable sandbox with ``*`` and ``**`` capped (see MAX_REPEAT, MAX_POWER_BITS)."""
+
+    intercepted_binops = frozenset({"*", "**"})
+
+    def call_binop(self, context: Any, operator: str, left: Any, right: Any) -> Any:
+        if operator == "**" and all(isinstance(v, int) for v in (left, right)) and right > 0 and abs(left) > 1 \
+                and right * math.log2(abs(left)) > MAX_POWER_BITS:
+            raise OverflowError(f"{left} ** {right} is too large for a template (more than {MAX_POWER_BITS} bits)")
+        if operator == "*":
+            sized, count = (left, right) if isinstance(left, str | list | tuple) else (right, left)
+            if isinstance(sized, str | list | tuple) and isinstance(count, int) and len(sized) * count > MAX_REPEAT:
+                raise OverflowError(f"repeating {len(sized)} items {count} times is too large for a template "
+                                    f"(at most {MAX_REPEAT:,})")
+        return super().call_binop(context, operator, left, right)
+
+
 def _environment(**extra: Any) -> ImmutableSandboxedEnvironment:
-    env = ImmutableSandboxedEnvironment(undefined=jinja2.StrictUndefined, keep_trailing_newline=True, autoescape=False,
+    env = _Sandbox(undefined=jinja2.StrictUndefined, keep_trailing_newline=True, autoescape=False,
                                         comment_start_string="<#--", comment_end_string="--#>", **extra)
     del env.filters["random"]  # a case folder must depend on its design and condition only
     return env

@@ -246,6 +246,22 @@ def test_sandbox_refuses_python_internals_in_one_line_and_runs_nothing(payload, 
     assert not (tmp_path / "ran").exists()
 
 
+@pytest.mark.parametrize(("expression", "message"), [
+    ("'x' * 10**10", "repeating 1 items 10000000000 times is too large for a template (at most 10,000,000)"),
+    ("case_id * [0] * 10**6", "repeating 21 items 1000000 times is too large for a template (at most 10,000,000)"),
+    ("10 ** 1000000", "10 ** 1000000 is too large for a template (more than 100000 bits)"),
+])
+def test_repetition_and_powers_that_would_eat_memory_or_time_are_refused(expression, message):
+    with pytest.raises(TemplateError) as info:
+        render_text("{{ " + expression + " }}", CONTEXT, where="deck")
+    assert str(info.value) == f"deck line 1: OverflowError: {message}"
+
+
+def test_ordinary_arithmetic_and_repetition_still_work():
+    text = "{{ 2 ** 64 }} {{ '-' * 3 }} {{ 2 * ramp_angle }} {{ mach ** 2 }} {{ ([0] * case_id) | length }}"
+    assert render_text(text, CONTEXT, where="deck") == "18446744073709551616 --- 16.0 0.81 21"
+
+
 def test_the_random_filter_is_gone_so_a_case_depends_only_on_its_design():
     with pytest.raises(TemplateError, match="No filter named 'random'"):
         render_text("{{ [1, 2, 3] | random }}", CONTEXT, where="deck")
