@@ -24,13 +24,16 @@ NUL is refused.
 from __future__ import annotations
 
 import contextlib
+import difflib
 import fnmatch
 import math
 import os
+import re
 import shlex
 import shutil
 import stat
 import tempfile
+import textwrap
 import traceback
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
@@ -117,8 +120,7 @@ def _render(env: jinja2.Environment, text: str, context: Mapping[str, Any], wher
         raise TemplateError(f"{where} line {err.lineno}: template syntax error ({err.message}); see the README's "
                             "'Templates' section for the syntax") from None
     except jinja2.UndefinedError as err:
-        known = ", ".join(sorted(context))
-        raise TemplateError(f"{where}{_line(err)}: {err.message}; placeholders available: {known}") from None
+        raise TemplateError(f"{where}{_line(err)}: {err.message}{_names_hint(err.message or '', context)}") from None
     except jinja2.sandbox.SecurityError as err:
         raise TemplateError(f"{where}{_line(err)}: refused by the template sandbox ({str(err).rstrip('.')}); templates may use "
                             "values, filters and tests, not Python internals") from None
@@ -127,6 +129,18 @@ def _render(env: jinja2.Environment, text: str, context: Mapping[str, Any], wher
             raise TemplateError(f"{where}{_line(err)}: include, import and extends are not available; each template "
                                 "file is rendered on its own (use a macro in the same file)") from None
         raise TemplateError(f"{where}{_line(err)}: {type(err).__name__}: {str(err)[:200]}") from None
+
+
+def _names_hint(message: str, context: Mapping[str, Any]) -> str:
+    """`` (did you mean 'x'?); placeholders available: ...`` for an undefined name, the list kept short."""
+    undefined = re.match(r"'(.+)' is undefined$", message)
+    if undefined is None:  # an attribute or item of a value, not a missing name
+        return ""
+    names = sorted(context)
+    close = difflib.get_close_matches(undefined[1], names, n=1)
+    did = f" (did you mean {close[0]!r}?)" if close else ""
+    shown = textwrap.shorten(", ".join(names), 100, placeholder=f" ... ({len(names)} in all)")
+    return f"{did}; placeholders available: {shown}"
 
 
 def _line(err: BaseException) -> str:

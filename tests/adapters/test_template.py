@@ -405,3 +405,14 @@ def test_a_template_error_during_a_run_fails_only_that_case_with_one_line(tmp_pa
     assert outcome.reason == (f"the case's input could not be rendered: template file {folder / 'deck.in'} line 1: "
                               "ZeroDivisionError: integer division or modulo by zero")
     assert adapter.attach(case, handle.job_id, None) is None  # a resumed run renders it again
+
+
+def test_a_misspelt_name_gets_a_suggestion_and_a_short_list():
+    context = {**{f"strut_station_{i}": 0.1 * i for i in range(20)}, "ramp_angle": 8.0}
+    with pytest.raises(TemplateError) as info:
+        render_text("angle {{ ramp_angel }}", context, where="deck")
+    message = str(info.value)
+    assert message.startswith("deck line 1: 'ramp_angel' is undefined (did you mean 'ramp_angle'?); placeholders "
+                              "available: ramp_angle, strut_station_0, ")
+    assert message.endswith(" ... (21 in all)")
+    assert len(message) < 200
