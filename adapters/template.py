@@ -51,6 +51,9 @@ _CR = "\ufdd0"  # a Unicode noncharacter: never present in real input files
 class TemplateError(AdapterError):
     """A template that cannot be rendered for a case: one line naming the file (or key) and line."""
 
+    def __init__(self, message: str) -> None:
+        super().__init__(" ".join(message.splitlines()))  # an exception's own text may hold line breaks
+
 
 #: Longest text or list ``*`` may build, and most bits ``**`` may give an integer: a template must
 #: not take a run's memory or time (``{{ 'x' * 10**10 }}``, ``{{ 10 ** 10 ** 10 }}``).
@@ -77,7 +80,7 @@ class _Sandbox(ImmutableSandboxedEnvironment):
 
 def _environment(**extra: Any) -> ImmutableSandboxedEnvironment:
     env = _Sandbox(undefined=jinja2.StrictUndefined, keep_trailing_newline=True, autoescape=False,
-                                        comment_start_string="<#--", comment_end_string="--#>", **extra)
+                   comment_start_string="<#--", comment_end_string="--#>", **extra)
     del env.filters["random"]  # a case folder must depend on its design and condition only
     return env
 

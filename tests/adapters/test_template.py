@@ -4,6 +4,7 @@ templates render in a sandbox, and ``sortie check`` renders them for the baselin
 from __future__ import annotations
 
 import os
+import socket
 import stat
 import subprocess
 import sys
@@ -291,10 +292,30 @@ def test_a_symlink_out_of_the_template_is_refused_and_never_copied(tmp_path):
     assert [p.split(" is a ")[0] for p in problems] == [f"solver.template: {folder / n}" for n in ("passwd", "up", "zeros")]
 
 
-def test_a_fifo_in_the_template_is_refused_without_blocking(tmp_path):
-    folder = tmp_path / "template"
+def _make_special(path: Path, kind: str) -> None:
+    if kind == "FIFO":
+        os.mkfifo(path)
+    elif kind == "socket":
+        sock = socket.socket(socket.AF_UNIX)
+        try:
+            sock.bind(str(path))  # the socket file stays after the socket is closed
+        except OSError as err:  # a path longer than AF_UNIX allows
+            pytest.skip(f"cannot bind a Unix socket at {path}: {err}")
+        finally:
+            sock.close()
+    else:
+        try:
+            os.mknod(path, stat.S_IFCHR | 0o600, os.makedev(1, 5))  # the numbers of /dev/zero
+        except PermissionError:
+            pytest.skip("making a device file needs root")
+
+
+@pytest.mark.parametrize("kind", ["FIFO", "socket", "character device"])
+def test_a_special_file_in_the_template_is_refused_without_reading_it(kind, tmp_path):
+    folder = tmp_path / "t"
     folder.mkdir()
-    os.mkfifo(folder / "pipe")
+    (folder / "deck.in").write_text("mach {{ mach }}\n")
+    _make_special(folder / "sp", kind)
     errors: list[BaseException] = []
 
     def render() -> None:
@@ -303,13 +324,14 @@ def test_a_fifo_in_the_template_is_refused_without_blocking(tmp_path):
         except BaseException as err:  # collected for the assertion below
             errors.append(err)
 
-    worker = threading.Thread(target=render, daemon=True)
+    worker = threading.Thread(target=render, daemon=True)  # reading a FIFO or /dev/zero would never end
     worker.start()
     worker.join(10)
-    assert not worker.is_alive(), "rendering blocked on a FIFO"
+    assert not worker.is_alive(), f"rendering blocked on a {kind}"
     assert len(errors) == 1 and isinstance(errors[0], TemplateError)
-    assert str(errors[0]) == (f"solver.template: {folder / 'pipe'} is a FIFO, not a regular file; a template folder "
+    assert str(errors[0]) == (f"solver.template: {folder / 'sp'} is a {kind}, not a regular file; a template folder "
                               "holds only files, folders and symlinks inside it")
+    assert not (tmp_path / "case" / "sp").exists()
     assert template_problems(folder, None, [("baseline", CONTEXT)]) == [str(errors[0])]
 
 
