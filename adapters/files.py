@@ -28,8 +28,7 @@ def which_program(program: str, folder: Path) -> str | None:
     """Find ``program``: a path relative to the case folder (a run script shipped in the template),
     else on PATH, else beside this Python (a venv's console scripts)."""
     if os.sep in program:
-        # absolute, so it is found whatever the solver's working directory (a relative campaign folder)
-        path = Path(os.path.abspath(Path(folder) / program))
+        path = Path(folder) / program
         return str(path) if os.access(path, os.X_OK) else None
     return shutil.which(program) or shutil.which(program, path=str(Path(sys.executable).parent))
 
