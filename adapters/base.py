@@ -35,7 +35,12 @@ class JobState(enum.Enum):
 
 @dataclass(frozen=True)
 class CaseSpec:
-    """Everything an adapter needs to run one case (a design at one condition)."""
+    """Everything an adapter needs to run one case (a design at one condition).
+
+    ``workdir`` is made absolute here, once: a solver runs with its case folder as working
+    directory, so a folder given relative to the orchestrator's (the default
+    ``campaigns/<name>``, any relative ``--dir``) would lead nowhere from there.
+    """
 
     case_id: int
     name: str
@@ -43,6 +48,9 @@ class CaseSpec:
     values: Mapping[str, Any]
     condition: Mapping[str, float]
     workdir: Path
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "workdir", Path(self.workdir).resolve())
 
     def context(self) -> dict[str, Any]:
         """Template placeholders: parameters, conditions, and ``case_name``/``case_id``/``design_id``."""

@@ -23,8 +23,18 @@ from pathlib import Path
 from pydantic import BaseModel, ConfigDict, Field
 
 from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState
-from sortie.adapters.files import STDERR, STDOUT, folder_problems, last_line, read_case_quantities, which_program
-from sortie.adapters.template import render_folder, render_text
+from sortie.adapters.files import (
+    STDERR,
+    STDOUT,
+    folder_problems,
+    last_line,
+    read_case_quantities,
+    rendering_problems,
+    unrendered,
+    unrendered_outcome,
+    which_program,
+)
+from sortie.adapters.template import TemplateError, render_folder, render_text
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
 
@@ -92,14 +102,23 @@ class CommandAdapter:
             problems.append(f"solver.command: program {options.command[0]!r} is not found on PATH or in {Path(sys.executable).parent}; give an installed program or a path")
         return problems
 
+    @classmethod
+    def check_cases(cls, options: CommandOptions, cases: list[CaseSpec], base_dir: Path) -> list[str]:
+        """Problems rendering the template folder and the command for ``cases`` (the baseline at every condition)."""
+        template = (base_dir / options.template).resolve()
+        return rendering_problems(template, options.render, cases, lambda case: _argv(options, case.context()))
+
     def start(self, case: CaseSpec) -> JobHandle:
-        workdir = Path(case.workdir)
+        workdir = Path(case.workdir)  # absolute (CaseSpec), so the solver finds ./solver.py from its folder
         if workdir.exists():
             shutil.rmtree(workdir)  # a fresh attempt starts from the template, never from leftovers
         workdir.mkdir(parents=True)
         context = case.context()
-        render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
-        argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
+        try:
+            render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
+            argv = _argv(self.options, context)
+        except TemplateError as err:
+            return unrendered(case, err)
         program = which_program(argv[0], workdir)
         if program is None:
             raise AdapterError(f"solver.command: program {argv[0]!r} is not found on PATH; give an installed program or a path")
@@ -119,6 +138,8 @@ class CommandAdapter:
         return JobHandle(case.case_id, str(proc.pid), now, pgid=proc.pid)
 
     def poll(self, handle: JobHandle) -> JobState:
+        if unrendered_outcome(handle) is not None:
+            return JobState.FAILED
         run = self._running.get(handle.case_id)
         if run is None:
             return JobState.FAILED
@@ -139,6 +160,9 @@ class CommandAdapter:
         return JobState.DONE if code == 0 else JobState.FAILED
 
     def collect(self, handle: JobHandle, case: CaseSpec) -> CaseOutcome:
+        not_rendered = unrendered_outcome(handle)
+        if not_rendered is not None:
+            return not_rendered
         run = self._running.pop(handle.case_id, None)
         workdir = Path(case.workdir)
         stderr = workdir / STDERR
@@ -156,6 +180,8 @@ class CommandAdapter:
 
     def cancel(self, handle: JobHandle) -> None:
         run = self._running.pop(handle.case_id, None)
+        if unrendered_outcome(handle) is not None:
+            return  # nothing was started
         kill_group(int(handle.pgid or handle.job_id), self.options.kill_grace_s, run.proc if run else None)
 
     def attach(self, case: CaseSpec, job_id: str | None, pgid: int | None) -> JobHandle | None:
@@ -181,6 +207,11 @@ class CommandAdapter:
         deadline = time.monotonic() + self.options.timeout_s - max(time.time() - started_at, 0.0)
         self._running[case.case_id] = _Running(None, group, workdir, deadline)
         return JobHandle(case.case_id, str(group), started_at, pgid=group)
+
+
+def _argv(options: CommandOptions, context: Mapping[str, object]) -> list[str]:
+    """The solver's argument list for one case (each item a template)."""
+    return [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(options.command)]
 
 
 def _exit_status(workdir: Path) -> int | None:

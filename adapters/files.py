@@ -1,5 +1,6 @@
 """What the adapters that run a solver in a case folder share: finding the program, checking the
-template, and reading quantities and error lines from the folder after the solver ends.
+template (and rendering it for the baseline before a run), a case whose folder could not be
+rendered, and reading quantities and error lines from the folder after the solver ends.
 
 The command and Slurm adapters differ only in how the solver is started and watched; what they
 read back must be the same, so a campaign can move from a workstation to a cluster unchanged.
@@ -10,10 +11,12 @@ from __future__ import annotations
 import os
 import shutil
 import sys
-from collections.abc import Mapping
+import time
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
-from sortie.adapters.base import CaseOutcome, check_quantities
+from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, check_quantities
+from sortie.adapters.template import TemplateError, template_problems
 from sortie.config import QuantitySpec
 from sortie.quantities import QuantityNotFound, read_quantity
 
@@ -49,6 +52,46 @@ def folder_problems(adapter: str, template: str, quantities: Mapping[str, Quanti
         if spec.file is None:
             problems.append(f"quantities.{name}: the {adapter} adapter reads quantities from files; give 'file' and one of pattern, key, column, json_path")
     return problems
+
+
+def case_label(case: CaseSpec) -> str:
+    """Which case a check rendered: ``baseline design at mach=0.9``."""
+    where = ", ".join(f"{k}={v:g}" if isinstance(v, float) else f"{k}={v}" for k, v in case.condition.items())
+    return f"baseline design at {where}" if where else "baseline design"
+
+
+def rendering_problems(template: Path, render: Sequence[str] | None, cases: Sequence[CaseSpec],
+                       render_other: Callable[[CaseSpec], object]) -> list[str]:
+    """Render the template folder and ``render_other`` (command, batch script) for each case, before a run.
+
+    Each problem is one line, reported once (for the first case it happens in).
+    """
+    problems = template_problems(template, render, [(case_label(case), case.context()) for case in cases])
+    seen: set[str] = set()
+    for case in cases:
+        try:
+            render_other(case)
+        except TemplateError as err:
+            if str(err) not in seen:
+                seen.add(str(err))
+                problems.append(f"{err} ({case_label(case)})")
+    return problems
+
+
+def unrendered(case: CaseSpec, err: TemplateError) -> JobHandle:
+    """The handle of a case whose input could not be rendered: nothing started, its poll says FAILED.
+
+    A template that fails only for some designs (an expression that divides by a parameter, a
+    value refused in shell code) fails that case with a reason, like a solver that fails on it;
+    the run goes on. The job id is empty, so a resumed run finds no job and renders it again.
+    """
+    return JobHandle(case.case_id, "", time.time(), extra={"unrendered": str(err)})
+
+
+def unrendered_outcome(handle: JobHandle) -> CaseOutcome | None:
+    """The failed outcome of an :func:`unrendered` handle; None for a handle of a started job."""
+    reason = handle.extra.get("unrendered")
+    return None if reason is None else CaseOutcome.failed("solver", f"the case's input could not be rendered: {reason}")
 
 
 def read_case_quantities(workdir: Path, quantities: Mapping[str, QuantitySpec]) -> CaseOutcome:

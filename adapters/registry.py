@@ -14,9 +14,10 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from sortie.adapters.base import SolverAdapter
-from sortie.config import QuantitySpec, format_validation_errors
+from sortie.adapters.base import CaseSpec, SolverAdapter
+from sortie.config import CampaignConfig, QuantitySpec, format_validation_errors, load_config
 from sortie.errors import AdapterError, ConfigError
+from sortie.ledger import case_name
 
 GROUP = "sortie.adapters"
 
@@ -50,6 +51,41 @@ def check_solver(section: Mapping[str, Any], base_dir: Path, quantities: Mapping
         return format_validation_errors(err, cls.Options, prefix="solver.")
     specs = _quantity_specs(quantities or {})
     return list(cls.check(options, specs, Path(base_dir)))
+
+
+def check_cases(config: CampaignConfig, base_dir: Path) -> list[str]:
+    """Problems preparing the baseline design's case at every condition, found before a run.
+
+    An adapter that renders case input (a template folder, a command, a batch script) offers a
+    classmethod ``check_cases(options, cases, base_dir) -> problems``; it renders into a
+    temporary folder, so an undefined name or a template syntax error is refused by ``sortie
+    check`` instead of stopping a run. Adapters without one have nothing to render.
+    """
+    cls = adapter_class(str(config.solver["adapter"]))
+    check = getattr(cls, "check_cases", None)
+    if check is None:
+        return []
+    options = cls.Options.model_validate(dict(config.solver))
+    design = config.space().baseline()
+    # workdir is never written: checks render into a temporary folder of their own
+    cases = [CaseSpec(i + 1, case_name(1, i), 1, design, condition, Path(case_name(1, i)))
+             for i, condition in enumerate(config.condition_list())]
+    return list(check(options, cases, Path(base_dir)))
+
+
+def load_checked_config(path: Path) -> CampaignConfig:
+    """The config at ``path``, its adapter options checked and the baseline's case input rendered (check, run).
+
+    Raises
+    ------
+    ConfigError
+        With one line per problem.
+    """
+    config = load_config(path, check_solver=check_solver)
+    problems = check_cases(config, Path(path).resolve().parent)
+    if problems:
+        raise ConfigError(problems)
+    return config
 
 
 def build_adapter(section: Mapping[str, Any], quantities: Mapping[str, QuantitySpec], base_dir: Path) -> SolverAdapter:

@@ -47,8 +47,18 @@ from typing import ClassVar
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState
-from sortie.adapters.files import STDERR, STDOUT, folder_problems, last_line, read_case_quantities, which_program
-from sortie.adapters.template import render_folder, render_text
+from sortie.adapters.files import (
+    STDERR,
+    STDOUT,
+    folder_problems,
+    last_line,
+    read_case_quantities,
+    rendering_problems,
+    unrendered,
+    unrendered_outcome,
+    which_program,
+)
+from sortie.adapters.template import TemplateError, render_folder, render_shell, render_text
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
 
@@ -157,18 +167,25 @@ class SlurmOptions(BaseModel):
     @field_validator("env")
     @classmethod
     def _env_names(cls, env: dict[str, str]) -> dict[str, str]:
-        for key in env:
+        for key, value in env.items():
             if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", key):
                 raise ValueError(f"{key!r} is not an environment variable name (letters, digits, underscore)")
+            if _breaks_line(value):
+                raise ValueError(f"the value of {key} holds a line break or NUL, which the batch script cannot hold")
         return env
 
-    @field_validator("sbatch_lines", "setup")
+    @field_validator("sbatch_lines", "setup", "command")
     @classmethod
     def _single_lines(cls, lines: list[str]) -> list[str]:
         for line in lines:
-            if "\n" in line or "\r" in line:
-                raise ValueError(f"{line!r} holds a line break; give one list item per line")
+            if _breaks_line(line):
+                raise ValueError(f"{line[:60]!r} holds a line break or NUL; give one list item per line")
         return lines
+
+
+def _breaks_line(text: str) -> bool:
+    """A line break or NUL would end a line of the batch script early (or cut it)."""
+    return any(c in text for c in "\n\r\0")
 
 
 def time_limit_seconds(value: object) -> int:
@@ -368,6 +385,13 @@ class SlurmAdapter:
         return problems
 
     @classmethod
+    def check_cases(cls, options: SlurmOptions, cases: list[CaseSpec], base_dir: Path) -> list[str]:
+        """Problems rendering the template folder and the batch script for ``cases`` (the baseline at every condition)."""
+        adapter = cls(options, {}, base_dir)
+        template = (base_dir / options.template).resolve()
+        return rendering_problems(template, options.render, cases, lambda case: adapter.script_parts(case.context()))
+
+    @classmethod
     def _test_resources(cls, options: SlurmOptions) -> str | None:
         """Ask ``sbatch --test-only`` whether the cluster accepts the resources (nothing is submitted).
 
@@ -387,11 +411,15 @@ class SlurmAdapter:
             shutil.rmtree(workdir)  # a fresh attempt starts from the template, never from leftovers
         workdir.mkdir(parents=True)
         context = case.context()
-        render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
         token = uuid.uuid4().hex[:12]
         name = job_name(case.name, workdir)
+        try:
+            render_folder((self.base_dir / self.options.template).resolve(), workdir, context, self.options.render)
+            script = self.batch_script(case, workdir, name, token)
+        except TemplateError as err:
+            return unrendered(case, err)
         (workdir / SUBMIT_RECORD).write_text(f"{token}\n")  # before sbatch: a resume compares it with the job's comment
-        (workdir / SCRIPT).write_text(self.batch_script(case, workdir, name, token))
+        (workdir / SCRIPT).write_text(script)
         job_id = self._submit(case, workdir, name, token)
         job = SlurmJob(job_id, "PENDING", name=name, comment=_comment(token, workdir))
         with self._lock:
@@ -401,6 +429,8 @@ class SlurmAdapter:
 
     def poll(self, handle: JobHandle) -> JobState:
         """The job's state from the shared cache, refreshed by one query when it is older than the interval."""
+        if unrendered_outcome(handle) is not None:
+            return JobState.FAILED
         job_id = handle.job_id
         with self._lock:
             if job_id not in self._jobs:  # a handle from elsewhere (another instance): track it from now on
@@ -413,6 +443,9 @@ class SlurmAdapter:
 
     def collect(self, handle: JobHandle, case: CaseSpec) -> CaseOutcome:
         """The case's outcome: quantities read from its folder if the job COMPLETED, else why not."""
+        not_rendered = unrendered_outcome(handle)
+        if not_rendered is not None:
+            return not_rendered
         job_id = handle.job_id
         with self._lock:
             job = self._jobs.get(job_id)
@@ -434,6 +467,8 @@ class SlurmAdapter:
 
     def cancel(self, handle: JobHandle) -> None:
         """``scancel`` the job; its end (CANCELLED) is seen by the next poll."""
+        if unrendered_outcome(handle) is not None:
+            return  # nothing was submitted
         result = self.runner(["scancel", handle.job_id])
         if result.returncode != 0 and "already completing or completed" not in result.stderr \
                 and "Invalid job id" not in result.stderr:
@@ -490,8 +525,7 @@ class SlurmAdapter:
         exit code instead of starting the solver in a wrong environment). The solver's exit code
         is written to ``sortie.exit`` with the submission token and returned as the job's.
         """
-        context = case.context()
-        argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
+        argv, extra_lines, setup = self.script_parts(case.context())
         program = which_program(argv[0], workdir)
         if program is None and not self.options.setup:
             raise AdapterError(f"solver.command: program {argv[0]!r} is not found on PATH; give an installed program, a path, or setup lines that provide it")
@@ -499,15 +533,13 @@ class SlurmAdapter:
         lines = ["#!/bin/bash", f"#SBATCH --job-name={name}"]
         lines += [f"#SBATCH {arg}" for arg in resource_args(self.options)]
         lines += [f"#SBATCH --output={STDOUT}", f"#SBATCH --error={STDERR}"]
-        for i, extra in enumerate(self.options.sbatch_lines):
-            text = render_text(extra, context, where=f"solver.sbatch_lines[{i}]").strip()
-            lines.append(text if text.startswith("#SBATCH") else f"#SBATCH {text}")
+        lines += [text if text.startswith("#SBATCH") else f"#SBATCH {text}" for text in extra_lines]
         lines += [
             f"# Written by sortie for case {case.name} (submission {token}); resubmit by hand with: sbatch {SCRIPT}",
             "set -e",
             f"cd {shlex.quote(str(workdir))}",
         ]
-        lines += [render_text(s, context, where=f"solver.setup[{i}]") for i, s in enumerate(self.options.setup)]
+        lines += setup
         lines += [f"export {key}={shlex.quote(value)}" for key, value in self.options.env.items()]
         lines += [
             "set +e",
@@ -518,6 +550,22 @@ class SlurmAdapter:
             "exit $code",
         ]
         return "\n".join(lines) + "\n"
+
+    def script_parts(self, context: Mapping[str, object]) -> tuple[list[str], list[str], list[str]]:
+        """The solver's arguments, the extra ``#SBATCH`` lines and the set-up lines of one case.
+
+        Placeholders in ``sbatch_lines`` and ``setup`` become one quoted shell word each, so a
+        value such as ``$(touch x)`` or ``a;b`` stays data; a value with a line break or NUL is
+        refused (:class:`TemplateError`), as is a command argument holding one (it is quoted
+        when the command line is written).
+        """
+        argv = [render_text(a, context, where=f"solver.command[{i}]") for i, a in enumerate(self.options.command)]
+        for i, arg in enumerate(argv):
+            if _breaks_line(arg):
+                raise TemplateError(f"solver.command[{i}]: the rendered argument {arg[:60]!r} holds a line break or NUL, which the batch script cannot hold")
+        extra = [render_shell(s, context, where=f"solver.sbatch_lines[{i}]").strip() for i, s in enumerate(self.options.sbatch_lines)]
+        setup = [render_shell(s, context, where=f"solver.setup[{i}]") for i, s in enumerate(self.options.setup)]
+        return argv, extra, setup
 
     # -- scheduler queries ------------------------------------------------------------------------
     def _submit(self, case: CaseSpec, workdir: Path, name: str, token: str) -> str:

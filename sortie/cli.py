@@ -26,10 +26,9 @@ CAUTION = ("Caution: surrogate predictions must be confirmed by the real solver 
 
 
 def _load_config(path: Path):
-    from sortie.adapters.registry import check_solver
-    from sortie.config import load_config
+    from sortie.adapters.registry import load_checked_config
 
-    return load_config(path, check_solver=check_solver)
+    return load_checked_config(path)
 
 
 @app.command()

@@ -25,6 +25,7 @@ from sortie.adapters.base import CaseSpec, JobHandle, JobState
 from sortie.adapters.command import STDERR, STDOUT, CommandAdapter, CommandOptions, kill_group
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError, ConfigError
+from tests.adapters.tiny_campaign import write_template
 
 PY = [sys.executable, "-S"]
 
@@ -567,3 +568,22 @@ def test_a_reattached_solver_keeps_its_original_deadline(tmp_path: Path) -> None
     assert attached is not None
     assert second.poll(attached) is JobState.FAILED  # already past its timeout: killed at the first poll
     assert second.collect(attached, case).failure_class == "timeout"
+
+
+# --------------------------------------------------------------------------- relative campaign folders
+
+
+@pytest.mark.parametrize("campaign", ["campaigns/tiny", "./runs/../campaigns/tiny"])
+def test_a_solver_shipped_in_the_template_runs_under_a_relative_campaign_folder(
+        campaign: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """``command: [./solver.py, ...]`` with the case folder relative to our working directory (the
+    default ``campaigns/<name>``): the solver starts in its case folder and is found there."""
+    write_template(tmp_path / "template")
+    monkeypatch.chdir(tmp_path)
+    adapter = _adapter(tmp_path, ["./solver.py", "out.txt"], {"lift": QuantitySpec(file="out.txt", key="lift")})
+    case = CaseSpec(1, "d0001-c0", 1, {"ramp_angle": 8.0}, {"mach": 0.5}, Path(campaign) / "cases" / "d0001-c0")
+    handle = adapter.start(case)
+    assert _run(adapter, handle) is JobState.DONE, (Path(case.workdir) / STDERR).read_text()
+    outcome = adapter.collect(handle, case)
+    assert outcome.ok, outcome.reason
+    assert outcome.quantities == {"lift": 4.0}
