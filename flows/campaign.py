@@ -49,10 +49,10 @@ from sortie.space import DesignSpace  # noqa: E402
 
 TERMINAL = (JobState.DONE, JobState.FAILED)
 # The end-of-plan Sobol' indices are computed on a GP fitted to at most this many finished designs
-# (a seeded random subset): on 2,500 designs the fit and the 10,000 predictions took 37 s and
-# 800 MB; on 500 they take a few seconds and 100 MB, and indices of a smooth surrogate do not
-# need more points than that.
-INDICES_MAX_DESIGNS = 500
+# (a seeded random subset). On 2,500 designs of 8 parameters the fit and the 10,240 predictions
+# took 37 s and 600 MB more memory; on 500, 8 s and 106 MB; on 300, 3.4 s and 66 MB (a loaded
+# 2-core machine). Indices of a smooth surrogate do not need more points than that.
+INDICES_MAX_DESIGNS = 300
 
 
 @dataclass(frozen=True)
@@ -165,9 +165,8 @@ class _Conductor:
         """Record the baseline and the screening or initial experiment (only what is not recorded yet)."""
         wanted = first_designs(self.config.plan, self.config.space(), self.config.campaign.seed)
         have = self.ledger.count_designs()
-        for design in wanted[have:]:
-            self.ledger.add_design(stage=design.stage, reason=design.reason, values=design.values,
-                                   unit=design.unit, conditions=self.conditions)
+        if wanted[have:]:
+            self.ledger.add_designs(wanted[have:], self.conditions)
 
     # -- run -------------------------------------------------------------------------------
     def run(self) -> None:
@@ -304,9 +303,8 @@ class _Conductor:
         for warning in stages.screening_warnings(result):
             self.ledger.event("screening", warning)
         self.space = self.config.space().keep_free(result["selected"])
-        for design in initial_designs(self.config.plan.initial, self.space, self.config.campaign.seed, full=self.config.space()):
-            design_id = self.ledger.add_design(stage=design.stage, reason=design.reason, values=design.values,
-                                               unit=design.unit, conditions=self.conditions)
+        designs = initial_designs(self.config.plan.initial, self.space, self.config.campaign.seed, full=self.config.space())
+        for design_id in self.ledger.add_designs(designs, self.conditions):  # all or none: resume sees no half experiment
             self.waiting.extend(c.id for c in self.ledger.cases(design_id=design_id))
         return True
 

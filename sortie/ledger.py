@@ -287,20 +287,33 @@ class Ledger:
     def add_design(self, *, stage: str, reason: str, values: Mapping[str, Any], unit: Sequence[float],
                    conditions: Sequence[Mapping[str, float]], prediction: Mapping[str, Any] | None = None) -> int:
         """Record a design, its planned cases (one per condition) and any prediction, together."""
-        now = time.time()
         with self.transaction() as c:
-            cur = c.execute(
-                "INSERT INTO designs(stage, reason, values_json, unit_json, prediction_json, created_at)"
-                " VALUES (?, ?, ?, ?, ?, ?)",
-                (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]),
-                 json.dumps(dict(prediction)) if prediction is not None else None, now),
-            )
-            design_id = int(cur.lastrowid)
-            c.executemany(
-                "INSERT INTO cases(design_id, condition_index, condition_json) VALUES (?, ?, ?)",
-                [(design_id, i, json.dumps(dict(cond))) for i, cond in enumerate(conditions)],
-            )
-            self._event(c, "design", f"design {design_id} added ({stage}: {reason})", {"design": design_id})
+            return self._insert_design(c, stage, reason, values, unit, conditions, prediction)
+
+    def add_designs(self, designs: Sequence[Any], conditions: Sequence[Mapping[str, float]]) -> list[int]:
+        """Record several designs (each with ``stage``, ``reason``, ``values``, ``unit``) in one transaction.
+
+        A plan of thousands of designs is then one commit, not one per design, and is recorded
+        all at once or not at all.
+        """
+        with self.transaction() as c:
+            return [self._insert_design(c, d.stage, d.reason, d.values, d.unit, conditions, None) for d in designs]
+
+    def _insert_design(self, c: sqlite3.Connection, stage: str, reason: str, values: Mapping[str, Any],
+                       unit: Sequence[float], conditions: Sequence[Mapping[str, float]],
+                       prediction: Mapping[str, Any] | None) -> int:
+        cur = c.execute(
+            "INSERT INTO designs(stage, reason, values_json, unit_json, prediction_json, created_at)"
+            " VALUES (?, ?, ?, ?, ?, ?)",
+            (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]),
+             json.dumps(dict(prediction)) if prediction is not None else None, time.time()),
+        )
+        design_id = int(cur.lastrowid)
+        c.executemany(
+            "INSERT INTO cases(design_id, condition_index, condition_json) VALUES (?, ?, ?)",
+            [(design_id, i, json.dumps(dict(cond))) for i, cond in enumerate(conditions)],
+        )
+        self._event(c, "design", f"design {design_id} added ({stage}: {reason})", {"design": design_id})
         return design_id
 
     def mark_submitting(self, case_id: int, workdir: Path) -> int:
