@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import platform
 import subprocess
@@ -118,9 +119,10 @@ def _scale_run(cases: int, work: Path, env: dict[str, str], server_pid: int) -> 
     started, wall, usage = _sortie(["run", str(path), "--dir", str(work / "camp")], env)
     server_cpu = _cpu_s(server_pid) - server_cpu
     _, status_s, status_usage = _sortie(["status", str(work / "camp"), "--json"], env)
+    first, last, n = math.inf, -math.inf, 0
     with Ledger.open(ledger_path(work / "camp"), readonly=True) as ledger:
-        first, last, n = ledger._conn.execute("SELECT MIN(started_at), MAX(ended_at), COUNT(*) FROM cases").fetchone()
-    n = int(n)
+        for case in ledger.iter_cases():
+            first, last, n = min(first, case.started_at or math.inf), max(last, case.ended_at or -math.inf), n + 1
     return {"cases": n, "wall_s": wall, "first_case_s": first - started, "tail_s": started + wall - last,
             "conduct_ms_per_case": 1000 * (last - first) / n,
             "peak_rss_mb": usage.ru_maxrss / 1024, "run_cpu_s": usage.ru_utime + usage.ru_stime,
