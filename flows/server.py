@@ -29,6 +29,12 @@ from sortie.errors import CampaignError
 LOG_NAME = "prefect-server.log"
 PID_NAME = "prefect-server.pid"
 _PR_SET_PDEATHSIG = 1
+# The run's own server records flow and task runs (the task run recorder) and nothing else: no
+# UI reads its event feed and nobody can define automations, deployments or schedules on it, so
+# the services behind those only cost CPU per case (each task run sends three events) or per tick.
+PRIVATE_SERVER_SERVICES = {f"PREFECT_SERVER_SERVICES_{name}_ENABLED": "false" for name in (
+    "EVENT_PERSISTER", "TRIGGERS", "SCHEDULER", "LATE_RUNS", "FOREMAN", "PAUSE_EXPIRATIONS", "REPOSSESSOR",
+    "CANCELLATION_CLEANUP")}
 
 
 def _die_with_parent() -> None:
@@ -60,7 +66,7 @@ def start_local_api(log_dir: Path, *, timeout_s: float = 120.0) -> str:
     url = f"http://127.0.0.1:{port}/api"
     log_path = Path(log_dir) / LOG_NAME
     env = {**os.environ, "PREFECT_UI_ENABLED": "0", "PREFECT_SERVER_UI_ENABLED": "false",
-           "PREFECT__SERVER_EPHEMERAL": "1", "PREFECT__SERVER_FINAL": "1"}
+           "PREFECT__SERVER_EPHEMERAL": "1", "PREFECT__SERVER_FINAL": "1", **PRIVATE_SERVER_SERVICES}
     env.pop("PREFECT_API_URL", None)
     with open(log_path, "ab") as log:
         proc = subprocess.Popen(

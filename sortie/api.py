@@ -63,7 +63,7 @@ def case_table(ledger: Ledger, config: CampaignConfig) -> pd.DataFrame:
     conditions = list(config.conditions)
     quantities = list(config.quantities)
     rows = []
-    for c in ledger.cases():
+    for c in ledger.iter_cases():  # one row object at a time; only the table's cells are kept
         row: dict[str, Any] = {"id": c.id, "design": c.design_id, "condition_index": c.condition_index}
         row.update({k: c.condition.get(k) for k in conditions})
         row.update({"state": c.state, "attempts": c.attempts, "job_id": c.job_id})

@@ -87,6 +87,15 @@ def _accept_changes(directory: Path, config_path: Path, config: CampaignConfig, 
     return found
 
 
+def upgrade(directory: Path) -> None:
+    """Bring a ledger written by an older sortie to the current schema, in place (one transaction).
+
+    ``resume`` calls it under the campaign's lock before anything reads the ledger: readers
+    refuse an older ledger rather than read it slowly without the indexes it lacks.
+    """
+    Ledger.open(ledger_path(directory)).close()
+
+
 def load(directory: Path, *, check_solver: SolverCheck | None = None) -> tuple[CampaignConfig, Path]:
     """The campaign's config as recorded in its ledger, and the folder its paths are relative to."""
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:

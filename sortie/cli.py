@@ -90,6 +90,7 @@ def resume(
     from sortie.lock import CampaignLock
 
     with CampaignLock(directory) as lock:
+        campaign.upgrade(directory)  # a ledger of an older sortie gains its indexes here
         cfg, _ = campaign.load(directory)
         typer.echo(f"resuming campaign {cfg.campaign.name!r} in {directory}")
         _conduct(directory, cfg, lock, cancel_jobs)

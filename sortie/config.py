@@ -435,9 +435,9 @@ class CampaignConfig(_Section):
                             f"{n_free} free parameters; allowed: at least {n_free + 2} "
                             f"(default {default_surrogate_designs(n_free)})")
         if not problems:
-            from sortie.plan import initial_unit_points
+            from sortie.plan import initial_count
 
-            n_initial = len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+            n_initial = initial_count(self.plan.initial, self.space(), self.campaign.seed)
             n_screen = self.designs_before_infill() - 1 - n_initial
             needed = 1 + n_screen + n_initial + self.plan.n_confirmations()
             what = f"the {n_screen} designs of plan.screening, " if n_screen else ""
@@ -457,10 +457,10 @@ class CampaignConfig(_Section):
 
     def designs_before_infill(self) -> int:
         """The baseline, the screening designs and the initial experiment (their sizes are fixed)."""
-        from sortie.plan import initial_unit_points
+        from sortie.plan import initial_count
 
         n_screen = self.plan.screening.n_designs(self.space().n_dims) if self.plan.screening is not None else 0
-        return 1 + n_screen + len(initial_unit_points(self.plan.initial, self.space(), self.campaign.seed))
+        return 1 + n_screen + initial_count(self.plan.initial, self.space(), self.campaign.seed)
 
     def target_designs(self) -> int:
         """How many designs the campaign records in all: the budget, or less if the plan says so."""

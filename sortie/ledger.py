@@ -22,7 +22,7 @@ from typing import Any
 
 from sortie.errors import LedgerError
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 LEDGER_NAME = "ledger.sqlite"
 CASE_STATES = ("planned", "submitting", "running", "done", "failed")
 DESIGN_STATES = ("pending", "done", "failed")
@@ -98,7 +98,28 @@ CREATE TABLE analyses (
 );
 CREATE INDEX cases_by_state ON cases(state);
 CREATE INDEX cases_by_design ON cases(design_id);
+CREATE INDEX designs_by_status ON designs(status);
+CREATE INDEX designs_by_stage ON designs(stage, status);
+CREATE INDEX designs_by_score ON designs(status, feasible, objective);
+CREATE INDEX attempts_by_state ON attempts(state);
 """
+
+# How a ledger of an older schema version becomes the current one: the statements that take
+# version N to N + 1, run in one transaction on the first writable open (``resume``, ``run``).
+# Version 2 added the indexes that the per-event queries filter by; without them every case
+# finished would scan the designs table, so an old ledger is upgraded, never read slowly.
+_MIGRATIONS: dict[int, tuple[str, ...]] = {
+    1: (
+        "CREATE TABLE IF NOT EXISTS analyses (id INTEGER PRIMARY KEY, at REAL NOT NULL, kind TEXT NOT NULL,"
+        " data_json TEXT NOT NULL)",
+        "CREATE INDEX IF NOT EXISTS cases_by_state ON cases(state)",
+        "CREATE INDEX IF NOT EXISTS cases_by_design ON cases(design_id)",
+        "CREATE INDEX IF NOT EXISTS designs_by_status ON designs(status)",
+        "CREATE INDEX IF NOT EXISTS designs_by_stage ON designs(stage, status)",
+        "CREATE INDEX IF NOT EXISTS designs_by_score ON designs(status, feasible, objective)",
+        "CREATE INDEX IF NOT EXISTS attempts_by_state ON attempts(state)",
+    ),
+}
 
 
 @dataclass(frozen=True)
@@ -212,20 +233,35 @@ class Ledger:
         except sqlite3.DatabaseError as err:  # not SQLite at all, or SQLite without our tables
             ledger.close()
             raise LedgerError(f"{path}: not a sortie ledger ({err})") from None
-        if version != str(SCHEMA_VERSION):
+        known = version is not None and version.isdigit() and int(version) in (*_MIGRATIONS, SCHEMA_VERSION)
+        if not known:
             ledger.close()
             raise LedgerError(f"{path}: ledger schema version {version} is not supported; this sortie reads version {SCHEMA_VERSION}")
+        if readonly and version != str(SCHEMA_VERSION):
+            ledger.close()
+            raise LedgerError(f"{path}: the ledger has schema version {version}, older than this sortie's {SCHEMA_VERSION}; "
+                              f"upgrade it in place with 'sortie resume {Path(path).parent}' (it keeps every result)")
         if not readonly:
             ledger._writer_pragmas()
+            ledger._upgrade(int(version))  # type: ignore[arg-type]
         return ledger
 
     def _writer_pragmas(self) -> None:
         """WAL lets readers watch while the campaign writes; set only on a file known to be ours."""
         self._conn.execute("PRAGMA journal_mode=WAL")
         self._conn.execute("PRAGMA synchronous=NORMAL")
-        # added within schema 1: ledgers written before it gain the (empty) table on first write
-        self._conn.execute("CREATE TABLE IF NOT EXISTS analyses (id INTEGER PRIMARY KEY, at REAL NOT NULL,"
-                           " kind TEXT NOT NULL, data_json TEXT NOT NULL)")
+
+    def _upgrade(self, version: int) -> None:
+        """Bring an older ledger to :data:`SCHEMA_VERSION` in one transaction (all steps or none)."""
+        if version == SCHEMA_VERSION:
+            return
+        with self.transaction() as c:
+            for step in range(version, SCHEMA_VERSION):
+                for stmt in _MIGRATIONS[step]:
+                    c.execute(stmt)
+            c.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),))
+            self._event(c, "ledger-upgraded", f"ledger upgraded from schema version {version} to {SCHEMA_VERSION}",
+                        {"from": version, "to": SCHEMA_VERSION})
 
     def close(self) -> None:
         self._conn.close()
@@ -251,20 +287,33 @@ class Ledger:
     def add_design(self, *, stage: str, reason: str, values: Mapping[str, Any], unit: Sequence[float],
                    conditions: Sequence[Mapping[str, float]], prediction: Mapping[str, Any] | None = None) -> int:
         """Record a design, its planned cases (one per condition) and any prediction, together."""
-        now = time.time()
         with self.transaction() as c:
-            cur = c.execute(
-                "INSERT INTO designs(stage, reason, values_json, unit_json, prediction_json, created_at)"
-                " VALUES (?, ?, ?, ?, ?, ?)",
-                (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]),
-                 json.dumps(dict(prediction)) if prediction is not None else None, now),
-            )
-            design_id = int(cur.lastrowid)
-            c.executemany(
-                "INSERT INTO cases(design_id, condition_index, condition_json) VALUES (?, ?, ?)",
-                [(design_id, i, json.dumps(dict(cond))) for i, cond in enumerate(conditions)],
-            )
-            self._event(c, "design", f"design {design_id} added ({stage}: {reason})", {"design": design_id})
+            return self._insert_design(c, stage, reason, values, unit, conditions, prediction)
+
+    def add_designs(self, designs: Sequence[Any], conditions: Sequence[Mapping[str, float]]) -> list[int]:
+        """Record several designs (each with ``stage``, ``reason``, ``values``, ``unit``) in one transaction.
+
+        A plan of thousands of designs is then one commit, not one per design, and is recorded
+        all at once or not at all.
+        """
+        with self.transaction() as c:
+            return [self._insert_design(c, d.stage, d.reason, d.values, d.unit, conditions, None) for d in designs]
+
+    def _insert_design(self, c: sqlite3.Connection, stage: str, reason: str, values: Mapping[str, Any],
+                       unit: Sequence[float], conditions: Sequence[Mapping[str, float]],
+                       prediction: Mapping[str, Any] | None) -> int:
+        cur = c.execute(
+            "INSERT INTO designs(stage, reason, values_json, unit_json, prediction_json, created_at)"
+            " VALUES (?, ?, ?, ?, ?, ?)",
+            (stage, reason, json.dumps(dict(values)), json.dumps([float(u) for u in unit]),
+             json.dumps(dict(prediction)) if prediction is not None else None, time.time()),
+        )
+        design_id = int(cur.lastrowid)
+        c.executemany(
+            "INSERT INTO cases(design_id, condition_index, condition_json) VALUES (?, ?, ?)",
+            [(design_id, i, json.dumps(dict(cond))) for i, cond in enumerate(conditions)],
+        )
+        self._event(c, "design", f"design {design_id} added ({stage}: {reason})", {"design": design_id})
         return design_id
 
     def mark_submitting(self, case_id: int, workdir: Path) -> int:
@@ -392,9 +441,60 @@ class Ledger:
     def meta(self) -> dict[str, str]:
         return {r["key"]: r["value"] for r in self._conn.execute("SELECT key, value FROM meta")}
 
+    def data_version(self) -> int:
+        """A number that changes whenever another connection commits to the ledger.
+
+        A watcher keeps its connection open and compares this before reading anything else, so an
+        idle tick costs one pragma, not a read of the ledger.
+        """
+        return int(self._conn.execute("PRAGMA data_version").fetchone()[0])
+
     def designs(self, *, status: str | None = None) -> list[DesignRow]:
+        """Every design (of one status), oldest first. Loads them all: not for per-event decisions."""
+        return list(self.iter_designs(status=status))
+
+    def iter_designs(self, *, status: str | None = None) -> Iterator[DesignRow]:
+        """The designs one at a time, so a long table can be written without holding it in memory."""
         sql = "SELECT * FROM designs" + (" WHERE status = ?" if status else "") + " ORDER BY id"
-        return [_design(r) for r in self._conn.execute(sql, (status,) if status else ())]
+        return map(_design, self._conn.execute(sql, (status,) if status else ()))
+
+    def count_designs(self, *, status: str | None = None, stage: str | None = None) -> int:
+        """How many designs (of a status, of a stage) are recorded, counted on the indexes."""
+        clauses = [c for c, v in (("status = ?", status), ("stage = ?", stage)) if v is not None]
+        where = f" WHERE {' AND '.join(clauses)}" if clauses else ""
+        args = [v for v in (status, stage) if v is not None]
+        return int(self._conn.execute(f"SELECT COUNT(*) FROM designs{where}", args).fetchone()[0])
+
+    def first_design_id(self) -> int | None:
+        """The first design recorded (the baseline), or None in an empty ledger."""
+        return self._conn.execute("SELECT MIN(id) FROM designs").fetchone()[0]
+
+    def unscored_design_ids(self) -> list[int]:
+        """Pending designs whose cases have all ended: the ones waiting to be scored."""
+        rows = self._conn.execute(
+            "SELECT d.id FROM designs d WHERE d.status = 'pending' AND NOT EXISTS (SELECT 1 FROM cases c"
+            " WHERE c.design_id = d.id AND c.state NOT IN ('done', 'failed')) ORDER BY d.id")
+        return [int(r[0]) for r in rows]
+
+    def best_design(self, sense: str) -> DesignRow | None:
+        """Best feasible scored design; if none is feasible, the one that violates its constraints least.
+
+        The feasible case is one indexed lookup; the fallback reads only the constraint margins of
+        the scored designs, one row at a time, and only while no design is feasible.
+        """
+        order = "objective ASC" if sense == "minimize" else "objective DESC"
+        row = self._conn.execute("SELECT * FROM designs WHERE status = 'done' AND feasible = 1 AND objective IS NOT NULL"
+                                 f" ORDER BY {order}, id LIMIT 1").fetchone()
+        if row is not None:
+            return _design(row)
+        best_id, best_worst = None, math.inf
+        for r in self._conn.execute("SELECT id, constraints_json FROM designs WHERE status = 'done' AND objective IS NOT NULL"
+                                    " ORDER BY id"):
+            worst = max(json.loads(r[1]).values(), default=0.0) if r[1] else 0.0
+            worst = math.inf if worst is None else worst
+            if best_id is None or worst < best_worst:
+                best_id, best_worst = r[0], worst
+        return None if best_id is None else self.design(best_id)
 
     def design(self, design_id: int) -> DesignRow:
         row = self._conn.execute("SELECT * FROM designs WHERE id = ?", (design_id,)).fetchone()
@@ -403,6 +503,54 @@ class Ledger:
         return _design(row)
 
     def cases(self, *, design_id: int | None = None, states: Sequence[str] | None = None) -> list[CaseRow]:
+        """The cases (of one design, in some states), by id. Without a filter this loads them all."""
+        return list(self.iter_cases(design_id=design_id, states=states))
+
+    def case_ids(self, *, states: Sequence[str], retried: bool = False) -> list[int]:
+        """Ids of the cases in ``states`` (only those with an earlier attempt if ``retried``), by id."""
+        sql = f"SELECT id FROM cases WHERE state IN ({','.join('?' * len(states))})" + (" AND attempts > 0" if retried else "")
+        return [int(r[0]) for r in self._conn.execute(sql + " ORDER BY id", list(states))]
+
+    def count_cases(self) -> dict[str, int]:
+        """How many cases are in each state (every state present, zero if none)."""
+        counts = dict.fromkeys(CASE_STATES, 0)
+        counts.update({r[0]: int(r[1]) for r in self._conn.execute("SELECT state, COUNT(*) FROM cases GROUP BY state")})
+        return counts
+
+    def tally(self, table: str, column: str, *, where: str = "") -> dict[str, int]:
+        """Rows of ``table`` counted by ``column`` (in order of first appearance), on the indexes.
+
+        ``table``, ``column`` and ``where`` are the caller's fixed SQL, never user input.
+        """
+        sql = f"SELECT {column}, COUNT(*) FROM {table}{' WHERE ' + where if where else ''} GROUP BY {column} ORDER BY MIN(id)"
+        return {r[0]: int(r[1]) for r in self._conn.execute(sql)}
+
+    def attempt_stats(self) -> dict[str, Any]:
+        """Aggregates of the attempts table for ``status``: times, retries, failed classes with reasons.
+
+        Computed in SQL, so its cost is a scan of one narrow table and its size does not grow with it.
+        """
+        q = self._conn.execute
+        mean, total, count = q("SELECT AVG(CASE WHEN state = 'done' AND ended_at THEN ended_at - started_at END),"
+                               " TOTAL(CASE WHEN ended_at THEN ended_at - started_at END), COUNT(*) FROM attempts").fetchone()
+        retries = q("SELECT COUNT(*) FROM attempts a WHERE a.state = 'failed' AND a.number <"
+                    " (SELECT MAX(b.number) FROM attempts b WHERE b.case_id = a.case_id)").fetchone()[0]
+        failed: dict[str, dict[str, Any]] = {}
+        for cls, n in self.tally("attempts", "failure_class", where="state = 'failed' AND failure_class IS NOT NULL"
+                                 " AND failure_class != ''").items():
+            reasons = q("SELECT reason FROM attempts WHERE state = 'failed' AND failure_class = ? AND reason IS NOT NULL"
+                        " AND reason != '' GROUP BY reason ORDER BY MIN(id) LIMIT 3", (cls,))
+            failed[cls] = {"attempts": n, "reasons": [r[0] for r in reasons]}
+        return {"mean_case_s": mean, "solver_s": total, "attempts_total": int(count), "retries": int(retries),
+                "attempt_failures": failed}
+
+    def first_design(self, stage: str) -> DesignRow | None:
+        """The first design of a stage (the baseline, say), or None."""
+        row = self._conn.execute("SELECT * FROM designs WHERE stage = ? ORDER BY id LIMIT 1", (stage,)).fetchone()
+        return None if row is None else _design(row)
+
+    def iter_cases(self, *, design_id: int | None = None, states: Sequence[str] | None = None) -> Iterator[CaseRow]:
+        """The cases one at a time (see :meth:`cases`)."""
         clauses, args = [], []
         if design_id is not None:
             clauses.append("design_id = ?")
@@ -411,7 +559,7 @@ class Ledger:
             clauses.append(f"state IN ({','.join('?' * len(states))})")
             args.extend(states)
         where = f" WHERE {' AND '.join(clauses)}" if clauses else ""
-        return [_case(r) for r in self._conn.execute(f"SELECT * FROM cases{where} ORDER BY id", args)]
+        return map(_case, self._conn.execute(f"SELECT * FROM cases{where} ORDER BY id", args))
 
     def case(self, case_id: int) -> CaseRow:
         row = self._conn.execute("SELECT * FROM cases WHERE id = ?", (case_id,)).fetchone()

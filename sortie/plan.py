@@ -55,6 +55,17 @@ def initial_unit_points(stage: StageSpec, space: DesignSpace, seed: int) -> np.n
     raise ValueError(f"unknown sampling method {stage.method!r}")
 
 
+def initial_count(stage: StageSpec, space: DesignSpace, seed: int) -> int:
+    """How many designs the initial experiment has, without drawing a Sobol' or Latin hypercube sample.
+
+    Those two methods give exactly ``designs`` points; counting them this way spares readers of
+    a campaign (``sortie status``) the import of scipy.stats.
+    """
+    if stage.method in ("sobol", "lhs") and isinstance(stage.designs, int) and stage.designs > 0:
+        return stage.designs
+    return len(initial_unit_points(stage, space, seed))
+
+
 def sampling_notes(plan: PlanSection, n_free: int) -> list[str]:
     """Advice (not errors) about the plan's Sobol' stages, shown by `sortie check`."""
     sized = [("plan.initial.designs", plan.initial.designs if plan.initial.method == "sobol" else None)]

@@ -13,9 +13,6 @@ import threading
 from pathlib import Path
 from typing import Any, TextIO
 
-from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-
 from sortie.config import CampaignConfig
 from sortie.errors import LedgerError
 from sortie.ledger import Ledger, ledger_path
@@ -51,6 +48,41 @@ def _clock(seconds: float) -> str:
     return f"{h}:{m:02d}:{sec:02d}" if h else f"{m}:{sec:02d}"
 
 
+class SummaryReader:
+    """Reads a campaign's summary again only when its ledger changed since the last read.
+
+    One read-only connection is kept open (opened on the first read that finds the ledger):
+    SQLite's ``data_version`` on it changes only when another connection commits, so a read of
+    an unchanged ledger costs one pragma. Use it from one thread; close it when done.
+    """
+
+    def __init__(self, directory: Path, config: CampaignConfig) -> None:
+        self.directory = Path(directory)
+        self.config = config
+        self._ledger: Ledger | None = None
+        self._version: int | None = None
+        self._last: dict[str, Any] | None = None
+
+    def read(self) -> dict[str, Any] | None:
+        """The summary, or None while the ledger is being created or briefly locked."""
+        try:
+            if self._ledger is None:
+                self._ledger = Ledger.open(ledger_path(self.directory), readonly=True)
+            version = self._ledger.data_version()
+            if version != self._version or self._last is None:
+                self._last = summary(self._ledger, self.config)
+                self._version = version
+            return self._last
+        except (LedgerError, sqlite3.Error):
+            self.close()
+            return None  # try again next tick
+
+    def close(self) -> None:
+        if self._ledger is not None:
+            self._ledger.close()
+            self._ledger = None
+
+
 class LedgerWatcher:
     """Shows campaign progress until :meth:`stop`; use as a context manager."""
 
@@ -61,6 +93,7 @@ class LedgerWatcher:
         self.interval_s = interval_s
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name="sortie-progress", daemon=True)
+        self._readers = threading.local()  # a connection belongs to the thread that opened it
         self.tty = bool(getattr(stream, "isatty", lambda: False)())
         # the plan's full size, so the bars do not grow as infill adds designs
         self.target_designs = config.target_designs()
@@ -76,24 +109,37 @@ class LedgerWatcher:
 
     def wait_until_finished(self) -> None:
         """Block until the ledger shows the plan done (every design recorded and scored)."""
-        while True:
-            s = self._read()
-            if s is not None and s["designs_total"] >= s["designs_planned"] and not s["designs_pending"]:
-                return
-            self._stop.wait(self.interval_s)
+        try:
+            while True:
+                s = self._read()
+                if s is not None and s["designs_total"] >= s["designs_planned"] and not s["designs_pending"]:
+                    return
+                self._stop.wait(self.interval_s)
+        finally:
+            self._close_reader()
 
     def _read(self) -> dict[str, Any] | None:
-        try:
-            with Ledger.open(ledger_path(self.directory), readonly=True) as ledger:
-                return summary(ledger, self.config)
-        except (LedgerError, sqlite3.Error):
-            return None  # the ledger is being created or briefly locked; try again next tick
+        """The summary as of now, through this thread's own :class:`SummaryReader`."""
+        reader = getattr(self._readers, "reader", None)
+        if reader is None:
+            reader = self._readers.reader = SummaryReader(self.directory, self.config)
+        return reader.read()
 
     def _loop(self) -> None:
-        if self.tty:
-            self._loop_rich()
-        else:
-            self._loop_plain()
+        try:
+            if self.tty:
+                self._loop_rich()
+            else:
+                self._loop_plain()
+        finally:
+            self._close_reader()
+
+    def _close_reader(self) -> None:
+        """Close the calling thread's connection (SQLite connections stay in their thread)."""
+        reader = getattr(self._readers, "reader", None)
+        if reader is not None:
+            reader.close()
+            self._readers.reader = None
 
     def _loop_plain(self) -> None:
         last = None
@@ -110,6 +156,9 @@ class LedgerWatcher:
             self._stop.wait(self.interval_s)
 
     def _loop_rich(self) -> None:
+        from rich.console import Console  # only a terminal needs it; `status --json` starts faster without
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
         console = Console(file=self.stream)
         columns = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                    TextColumn("{task.fields[detail]}"))

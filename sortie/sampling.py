@@ -38,7 +38,6 @@ from collections.abc import Sequence
 from typing import Literal
 
 import numpy as np
-from scipy.stats import qmc
 
 __all__ = [
     "SamplingWarning",
@@ -157,6 +156,8 @@ def latin_hypercube(
     n_dims = _check_int("n_dims", n_dims)
     _check_seed(seed)
     _check_choice("optimization", optimization, _LHS_OPTIMIZATIONS)
+    from scipy.stats import qmc  # imported here: scipy.stats takes half a second, `sortie status` never draws
+
     engine = qmc.LatinHypercube(d=n_dims, scramble=True, optimization=optimization, rng=seed)
     return np.asarray(engine.random(n_points), dtype=float)
 
@@ -221,6 +222,8 @@ def sobol(n_points: int, n_dims: int, *, seed: Seed) -> np.ndarray:
             SamplingWarning,
             stacklevel=2,
         )
+    from scipy.stats import qmc
+
     engine = qmc.Sobol(d=n_dims, scramble=True, rng=seed)
     return np.asarray(engine.random_base2(m)[:n_points], dtype=float)
 

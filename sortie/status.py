@@ -6,12 +6,13 @@
 
 from __future__ import annotations
 
-from typing import Any
-
-import pandas as pd
+from typing import TYPE_CHECKING, Any
 
 from sortie.config import CampaignConfig
-from sortie.ledger import DesignRow, Ledger
+from sortie.ledger import DESIGN_STATES, DesignRow, Ledger
+
+if TYPE_CHECKING:  # pandas costs a quarter of a second to import; `sortie status` does not need it
+    import pandas as pd
 
 
 def best_design(designs: list[DesignRow], sense: str) -> DesignRow | None:
@@ -27,38 +28,39 @@ def best_design(designs: list[DesignRow], sense: str) -> DesignRow | None:
 
 
 def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
-    """Counts of designs and cases by state, the budget, and the best design so far."""
-    designs = ledger.designs()
-    cases = ledger.cases()
-    best = best_design(designs, config.goal.sense)
-    by_class: dict[str, int] = {}
-    for c in cases:
-        if c.state == "failed" and c.failure_class:
-            by_class[c.failure_class] = by_class.get(c.failure_class, 0) + 1
+    """Counts of designs and cases by state, the budget, and the best design so far.
+
+    Every figure is an aggregate query on indexed columns (or a short list: the cases in flight,
+    the analyses), so the cost of a summary does not grow with the number of cases recorded.
+    """
+    designs = {**dict.fromkeys(DESIGN_STATES, 0), **ledger.tally("designs", "status")}
+    cases = ledger.count_cases()
+    best = ledger.best_design(config.goal.sense)
     return {
         "campaign": config.campaign.name,
         "budget_designs": config.budget.designs,
         "budget_cases": config.budget.cases,
         "designs_planned": config.target_designs(),
         "n_conditions": len(config.condition_list()),
-        "designs_total": len(designs),
-        "designs_done": sum(d.status == "done" for d in designs),
-        "designs_failed": sum(d.status == "failed" for d in designs),
-        "designs_pending": sum(d.status == "pending" for d in designs),
-        "cases_total": len(cases),
-        "cases_done": sum(c.state == "done" for c in cases),
-        "cases_failed": sum(c.state == "failed" for c in cases),
-        "cases_running": sum(c.state in ("submitting", "running") for c in cases),
-        "cases_planned": sum(c.state == "planned" for c in cases),
-        "failures_by_class": by_class,
+        "designs_total": sum(designs.values()),
+        "designs_done": designs["done"],
+        "designs_failed": designs["failed"],
+        "designs_pending": designs["pending"],
+        "cases_total": sum(cases.values()),
+        "cases_done": cases["done"],
+        "cases_failed": cases["failed"],
+        "cases_running": cases["submitting"] + cases["running"],
+        "cases_planned": cases["planned"],
+        "failures_by_class": ledger.tally("cases", "failure_class", where="state = 'failed' AND failure_class IS NOT NULL"
+                                          " AND failure_class != ''"),
         "goal": {"sense": config.goal.sense, "objective": config.goal.objective().source,
                  "constraints": list(config.goal.subject_to)},
         "best": None if best is None else {
             "design": best.id, "stage": best.stage, "objective": best.objective, "feasible": best.feasible,
             "values": best.values, "constraints": best.constraints, "prediction": best.prediction,
         },
-        "baseline": _baseline(designs),
-        "stages": {stage: sum(d.stage == stage for d in designs) for stage in dict.fromkeys(d.stage for d in designs)},
+        "baseline": _baseline(ledger.first_design("baseline")),
+        "stages": ledger.tally("designs", "stage"),
         "models": ledger.model_choices(),
         "screening": _latest(ledger.analyses("screening")),
         "confirmations": [a["data"] for a in ledger.analyses("confirmation")],
@@ -72,36 +74,22 @@ def _latest(analyses: list[dict[str, Any]]) -> dict[str, Any] | None:
 
 def _attempt_summary(ledger: Ledger) -> dict[str, Any]:
     """Attempts and how they ended: retries, restarts, failure classes with sample reasons, live jobs."""
-    attempts = ledger.attempts()
-    last = {}
-    for a in attempts:
-        last[a["case_id"]] = max(last.get(a["case_id"], 0), a["number"])
-    failed: dict[str, dict[str, Any]] = {}
-    for a in attempts:
-        if a["state"] == "failed" and a["failure_class"]:
-            entry = failed.setdefault(a["failure_class"], {"attempts": 0, "reasons": []})
-            entry["attempts"] += 1
-            if a["reason"] and a["reason"] not in entry["reasons"] and len(entry["reasons"]) < 3:
-                entry["reasons"].append(a["reason"])
-    ended: dict[str, int] = {}
-    for a in attempts:
-        ended[a["state"]] = ended.get(a["state"], 0) + 1
-    took = [a["ended_at"] - a["started_at"] for a in attempts if a["state"] == "done" and a["ended_at"]]
+    stats = ledger.attempt_stats()
+    ended = ledger.tally("attempts", "state")
     return {
-        "mean_case_s": sum(took) / len(took) if took else None,
-        "solver_hours": sum(a["ended_at"] - a["started_at"] for a in attempts if a["ended_at"]) / 3600.0,
-        "attempts_total": len(attempts),
+        "mean_case_s": stats["mean_case_s"],
+        "solver_hours": stats["solver_s"] / 3600.0,
+        "attempts_total": stats["attempts_total"],
         "attempts_by_end": ended,
-        "retries": sum(a["state"] == "failed" and a["number"] < last[a["case_id"]] for a in attempts),
-        "restarts": sum(a["state"] in ("lost", "interrupted") for a in attempts),
-        "attempt_failures": failed,
+        "retries": stats["retries"],
+        "restarts": ended.get("lost", 0) + ended.get("interrupted", 0),
+        "attempt_failures": stats["attempt_failures"],
         "running": [{"case": c.name, "job_id": c.job_id, "state": c.state, "since": c.started_at}
-                    for c in ledger.cases(states=("submitting", "running"))],
+                    for c in ledger.iter_cases(states=("submitting", "running"))],
     }
 
 
-def _baseline(designs: list[DesignRow]) -> dict[str, Any] | None:
-    base = next((d for d in designs if d.stage == "baseline"), None)
+def _baseline(base: DesignRow | None) -> dict[str, Any] | None:
     if base is None:
         return None
     return {"design": base.id, "objective": base.objective, "feasible": base.feasible, "status": base.status}
@@ -109,8 +97,10 @@ def _baseline(designs: list[DesignRow]) -> dict[str, Any] | None:
 
 def design_table(ledger: Ledger, config: CampaignConfig) -> pd.DataFrame:
     """One row per design: id, stage, parameters, objective, constraint margins, feasible, status."""
+    import pandas as pd
+
     rows = []
-    for d in ledger.designs():
+    for d in ledger.iter_designs():  # one row object at a time; only the table's cells are kept
         row: dict[str, Any] = {"id": d.id, "stage": d.stage}
         row.update({name: d.values.get(name) for name in config.parameters})
         row["objective"] = d.objective

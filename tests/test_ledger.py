@@ -347,3 +347,127 @@ def test_writable_dir_under_a_regular_file_is_one_sentence(tmp_path):
     assert "--dir" in message
     assert "\n" not in message
     assert blocker.read_text() == "a file, not a folder"
+
+
+# --------------------------------------------------------------------------- schema upgrade
+
+_V2_INDEXES = {"designs_by_status", "designs_by_stage", "designs_by_score", "attempts_by_state"}
+
+
+def _as_version_1(path: Path) -> None:
+    """Make the ledger look like one written by schema version 1: without the per-event indexes."""
+    with _raw(path) as conn:
+        for name in _V2_INDEXES:
+            conn.execute(f"DROP INDEX {name}")
+        conn.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
+    conn.close()
+
+
+def _indexes(path: Path) -> set[str]:
+    with _raw(path) as conn:
+        names = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type = 'index'")}
+    conn.close()
+    return names
+
+
+def test_a_version_1_ledger_is_upgraded_in_place_when_opened_for_writing(path, ledger):
+    design = _design(ledger)
+    ledger.close()
+    _as_version_1(path)
+    assert not _V2_INDEXES & _indexes(path)
+    with Ledger.open(path) as upgraded:
+        assert upgraded.meta()["schema_version"] == str(SCHEMA_VERSION)
+        assert [c.design_id for c in upgraded.cases()] == [design] * len(CONDITIONS)
+        assert [e["kind"] for e in upgraded.events()][-1] == "ledger-upgraded"
+    assert _indexes(path) >= _V2_INDEXES
+
+
+def test_a_version_1_ledger_is_refused_read_only_with_the_command_that_upgrades_it(path, ledger):
+    ledger.close()
+    _as_version_1(path)
+    with pytest.raises(LedgerError) as info:
+        Ledger.open(path, readonly=True)
+    message = str(info.value)
+    assert f"sortie resume {path.parent}" in message
+    assert "\n" not in message
+
+
+def test_an_upgrade_that_fails_part_way_leaves_the_ledger_as_it_was(path, ledger, monkeypatch):
+    import sortie.ledger as ledger_module
+
+    ledger.close()
+    _as_version_1(path)
+    steps = (*ledger_module._MIGRATIONS[1], "CREATE INDEX broken ON no_such_table(x)")
+    monkeypatch.setitem(ledger_module._MIGRATIONS, 1, steps)
+    with pytest.raises(sqlite3.OperationalError):
+        Ledger.open(path)
+    assert not _V2_INDEXES & _indexes(path)
+    with _raw(path) as conn:
+        assert conn.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0] == "1"
+    conn.close()
+
+
+# --------------------------------------------------------------------------- aggregate reads
+
+def test_data_version_changes_when_another_connection_commits_and_only_then(path, ledger):
+    with Ledger.open(path, readonly=True) as reader:
+        before = reader.data_version()
+        assert reader.data_version() == before
+        _design(ledger)
+        after = reader.data_version()
+        assert after != before
+        assert reader.data_version() == after
+
+
+def test_counts_and_tallies_equal_counting_the_rows(path, ledger):
+    ids = [_design(ledger) for _ in range(4)]
+    cases = ledger.cases()
+    for c in cases[:5]:
+        ledger.mark_submitting(c.id, path.parent / c.name)
+    ledger.finish_case(cases[0].id, quantities={"lift": 0.1})
+    ledger.finish_case(cases[1].id, failure_class="solver", reason="diverged")
+    ledger.retry_case(cases[2].id, failure_class="transient", reason="node lost")
+    ledger.mark_submitting(cases[2].id, path.parent / cases[2].name)
+    ledger.finish_case(cases[2].id, failure_class="transient", reason="node lost again")
+    ledger.mark_running(cases[3].id, "42")
+    ledger.finish_design(ids[1], status="failed")
+    rows = ledger.cases()
+    assert ledger.count_cases() == {s: sum(c.state == s for c in rows) for s in ("planned", "submitting", "running",
+                                                                                 "done", "failed")}
+    assert ledger.count_designs() == 4 and ledger.count_designs(status="failed") == 1
+    assert ledger.count_designs(stage="initial", status="pending") == 3
+    assert ledger.tally("cases", "failure_class", where="state = 'failed'") == {"solver": 1, "transient": 1}
+    assert ledger.case_ids(states=("planned",)) == [c.id for c in rows if c.state == "planned"]
+    assert ledger.case_ids(states=("failed",), retried=True) == [c.id for c in rows if c.state == "failed"]
+    stats = ledger.attempt_stats()
+    attempts = ledger.attempts()
+    assert stats["attempts_total"] == len(attempts) == 6
+    assert stats["retries"] == 1  # the first attempt of the case tried twice
+    assert stats["attempt_failures"] == {"solver": {"attempts": 1, "reasons": ["diverged"]},
+                                         "transient": {"attempts": 2, "reasons": ["node lost", "node lost again"]}}
+    assert ledger.unscored_design_ids() == [ids[0]]  # its three cases ended (done, failed, failed)
+
+
+def test_best_design_is_the_best_feasible_else_the_least_violating(path, ledger):
+    from sortie.status import best_design
+
+    ids = [_design(ledger) for _ in range(4)]
+    ledger.finish_design(ids[0], status="done", objective=3.0, constraints={"c": 0.5}, feasible=False)
+    ledger.finish_design(ids[1], status="done", objective=5.0, constraints={"c": 0.2}, feasible=False)
+    for sense in ("minimize", "maximize"):
+        assert ledger.best_design(sense).id == best_design(ledger.designs(), sense).id == ids[1]
+    ledger.finish_design(ids[2], status="done", objective=4.0, constraints={"c": -0.1}, feasible=True)
+    ledger.finish_design(ids[3], status="done", objective=2.0, constraints={"c": -0.3}, feasible=True)
+    for sense, expected in (("minimize", ids[3]), ("maximize", ids[2])):
+        assert ledger.best_design(sense).id == best_design(ledger.designs(), sense).id == expected
+
+
+def test_resume_upgrades_the_ledger_before_anything_reads_it(path, ledger):
+    """``sortie resume`` calls campaign.upgrade under its lock, so its read-only config load then works."""
+    from sortie import campaign
+
+    ledger.close()
+    _as_version_1(path)
+    campaign.upgrade(path.parent)
+    with Ledger.open(path, readonly=True) as reader:
+        assert reader.meta()["schema_version"] == str(SCHEMA_VERSION)
