@@ -131,39 +131,45 @@ def resume(
 
 
 def _conduct(directory: Path, cfg, lock, cancel_jobs: bool) -> None:
-    """Run the campaign flow under the held lock; an interrupt ends with the resume command."""
+    """Run the campaign flow under the held lock, recording the run (state, heartbeat, ending);
+    an interrupt ends with the resume command."""
     import signal
 
     from sortie.progress import LedgerWatcher
+    from sortie.runstate import RunRecord, Terminated
 
     if lock.stale_message():
         typer.echo(lock.stale_message())
+
+    def _terminate(signum: int, frame: object) -> None:
+        raise Terminated  # SIGTERM stops the run the same careful way as Ctrl-C
+
+    signal.signal(signal.SIGTERM, _terminate)
+    with RunRecord(directory) as record:
+        try:
+            _start_prefect(directory)
+            from sortie.flows.campaign import run_campaign
+
+            with LedgerWatcher(directory, cfg, stream=sys.stdout):
+                run_campaign(directory, cancel_jobs=cancel_jobs)
+        except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM as Terminated
+            by_term = isinstance(exc, Terminated)
+            record.end("interrupted", "stopped by SIGTERM" if by_term else "stopped by Ctrl-C (SIGINT)")
+            _print_interrupted(directory, by_term)
+            raise typer.Exit(143 if by_term else 130) from None
+    _print_result(directory, cfg)
+
+
+def _start_prefect(directory: Path) -> None:
+    """Prefect's settings (its home inside the campaign folder) and, unless PREFECT_API_URL names a
+    running server, the run's own API server."""
     from sortie.flows.runtime import configure_prefect
     from sortie.flows.server import start_local_api
 
-    configure_prefect()
+    owned_home = configure_prefect(directory)
     if not os.environ.get("PREFECT_API_URL"):
         typer.echo("starting a local Prefect API for this run (about 10 s; set PREFECT_API_URL to use a running server)")
-        start_local_api(directory)
-    from prefect.exceptions import TerminationSignal
-
-    from sortie.flows.campaign import run_campaign
-
-    received: list[int] = []
-
-    def _interrupt(signum: int, frame: object) -> None:
-        received.append(signum)
-        raise KeyboardInterrupt
-
-    signal.signal(signal.SIGTERM, _interrupt)  # SIGTERM stops the run the same careful way as Ctrl-C
-    try:
-        with LedgerWatcher(directory, cfg, stream=sys.stdout):
-            run_campaign(directory, cancel_jobs=cancel_jobs)
-    except (KeyboardInterrupt, TerminationSignal) as exc:
-        by_term = signal.SIGTERM in received or isinstance(exc, TerminationSignal)
-        _print_interrupted(directory, by_term)
-        raise typer.Exit(143 if by_term else 130) from None
-    _print_result(directory, cfg)
+        start_local_api(directory, fresh_database=owned_home)
 
 
 def _print_interrupted(directory: Path, by_term: bool) -> None:
@@ -233,7 +239,7 @@ def _fmt(v: object) -> str:
 @app.command()
 def status(
     directory: DirArg,
-    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object (with --watch: one per line as it changes).")] = False,
     watch: Annotated[bool, typer.Option("--watch", help="Follow a running campaign live until it ends (Ctrl-C to stop watching).")] = False,
 ) -> None:
     """Show what a campaign has done, from its ledger (safe while it runs).
@@ -243,21 +249,27 @@ def status(
     from sortie import campaign
     from sortie.ledger import Ledger, ledger_path
     from sortie.progress import LedgerWatcher, describe
+    from sortie.runstate import describe_state
     from sortie.status import summary
 
     cfg, _ = campaign.load(directory)
     if watch:
         try:
+            if as_json:  # one JSON object per line as it changes, nothing else: the last line is the final state
+                LedgerWatcher(directory, cfg, stream=sys.stdout).follow_json()
+                return
             with LedgerWatcher(directory, cfg, stream=sys.stdout) as watcher:
                 watcher.wait_until_finished()
         except KeyboardInterrupt:
-            pass  # stops the watching only; the campaign runs on elsewhere
+            if as_json:
+                return
+            # stops the watching only; the campaign runs on elsewhere
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
         s = summary(ledger, cfg)
     if as_json:
         typer.echo(json.dumps(s, indent=2))
         return
-    typer.echo(f"campaign {s['campaign']!r} in {directory}")
+    typer.echo(f"campaign {s['campaign']!r} in {directory}: {describe_state(s['state'])}")
     typer.echo(describe(s))
     if s["failures_by_class"]:
         typer.echo("failed cases by class: " + ", ".join(f"{k} {v}" for k, v in sorted(s["failures_by_class"].items())))

@@ -226,6 +226,10 @@ class Ledger:
         # added within schema 1: ledgers written before it gain the (empty) table on first write
         self._conn.execute("CREATE TABLE IF NOT EXISTS analyses (id INTEGER PRIMARY KEY, at REAL NOT NULL,"
                            " kind TEXT NOT NULL, data_json TEXT NOT NULL)")
+        # one row per orchestrator run (see sortie.runstate): who ran it, its heartbeat, how it ended
+        self._conn.execute("CREATE TABLE IF NOT EXISTS runs (id INTEGER PRIMARY KEY, pid INTEGER NOT NULL,"
+                           " host TEXT NOT NULL, started_at REAL NOT NULL, heartbeat_at REAL NOT NULL,"
+                           " ended_at REAL, outcome TEXT, reason TEXT)")
 
     def close(self) -> None:
         self._conn.close()
@@ -374,6 +378,35 @@ class Ledger:
             return []
         return [{"id": r["id"], "at": r["at"], "kind": r["kind"], "data": json.loads(r["data_json"])} for r in rows]
 
+    # -- orchestrator runs (campaign state) --------------------------------------------------
+    def start_run(self, pid: int, host: str, *, unended_reason: str) -> int:
+        """Record that an orchestrator starts; runs still open (their process died) end as interrupted."""
+        now = time.time()
+        with self.transaction() as c:
+            c.execute("UPDATE runs SET outcome = 'interrupted', reason = ? WHERE outcome IS NULL", (unended_reason,))
+            cur = c.execute("INSERT INTO runs(pid, host, started_at, heartbeat_at) VALUES (?, ?, ?, ?)",
+                            (pid, host, now, now))
+        return int(cur.lastrowid)
+
+    def beat(self, run_id: int) -> None:
+        """The run is alive: one short write, every few seconds."""
+        with self.transaction() as c:
+            c.execute("UPDATE runs SET heartbeat_at = ? WHERE id = ?", (time.time(), run_id))
+
+    def end_run(self, run_id: int, outcome: str, reason: str | None = None) -> None:
+        """Record how a run ended: finished, failed or interrupted, with the reason."""
+        now = time.time()
+        with self.transaction() as c:
+            c.execute("UPDATE runs SET ended_at = ?, heartbeat_at = ?, outcome = ?, reason = ? WHERE id = ?",
+                      (now, now, outcome, reason, run_id))
+
+    def runs(self) -> list[dict[str, Any]]:
+        """Every orchestrator run, oldest first; [] for a ledger written before runs were recorded."""
+        try:
+            return [dict(r) for r in self._conn.execute("SELECT * FROM runs ORDER BY id")]
+        except sqlite3.OperationalError:  # no runs table yet, opened read-only
+            return []
+
     def event(self, kind: str, message: str, data: Mapping[str, Any] | None = None) -> None:
         with self.transaction() as c:
             self._event(c, kind, message, data)
@@ -485,7 +518,7 @@ def ledger_path(campaign_dir: Path) -> Path:
     return Path(campaign_dir) / LEDGER_NAME
 
 
-def writable_dir(path: Path) -> None:
+def writable_dir(path: Path, *, what: str = "the campaign folder", hint: str = "choose a writable folder with --dir") -> None:
     """Create ``path`` if needed and prove it is writable, or raise one clear LedgerError."""
     try:
         Path(path).mkdir(parents=True, exist_ok=True)
@@ -493,5 +526,5 @@ def writable_dir(path: Path) -> None:
         probe.write_bytes(b"x")
         probe.unlink()
     except OSError as err:
-        raise LedgerError(f"{path}: the campaign folder cannot be written ({err.strerror or err}); choose a writable folder with --dir") from None
+        raise LedgerError(f"{path}: {what} cannot be written ({err.strerror or err}); {hint}") from None
 

@@ -12,6 +12,7 @@ import pandas as pd
 
 from sortie.config import CampaignConfig
 from sortie.ledger import DesignRow, Ledger
+from sortie.runstate import campaign_state
 
 
 def best_design(designs: list[DesignRow], sense: str) -> DesignRow | None:
@@ -27,16 +28,18 @@ def best_design(designs: list[DesignRow], sense: str) -> DesignRow | None:
 
 
 def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
-    """Counts of designs and cases by state, the budget, and the best design so far."""
+    """The campaign's state, counts of designs and cases by state, the budget, and the best design so far."""
     designs = ledger.designs()
     cases = ledger.cases()
     best = best_design(designs, config.goal.sense)
+    plan_done = len(designs) >= config.target_designs() and not any(d.status == "pending" for d in designs)
     by_class: dict[str, int] = {}
     for c in cases:
         if c.state == "failed" and c.failure_class:
             by_class[c.failure_class] = by_class.get(c.failure_class, 0) + 1
     return {
         "campaign": config.campaign.name,
+        "state": campaign_state(ledger.path.parent, ledger, plan_done=plan_done),
         "budget_designs": config.budget.designs,
         "budget_cases": config.budget.cases,
         "designs_planned": config.target_designs(),
