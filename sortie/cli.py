@@ -1,9 +1,11 @@
 """The command line: a thin edge over the library.
 
 Each command parses its arguments, calls the library, and formats the answer. Every
-:class:`~sortie.errors.SortieError` becomes one line on stderr and exit code 2; ``--debug`` shows
-the traceback instead. Prefect is imported only inside ``run``, so ``check``, ``status`` and
-``export`` start fast.
+:class:`~sortie.errors.SortieError` and every usage error (unknown command or option, missing
+argument) becomes one line on stderr and exit code 2; ``--debug`` shows the traceback instead.
+Prefect is imported only inside ``run`` and ``resume``, so ``check``, ``status`` and ``export``
+start fast. A run records itself in the ledger (:mod:`sortie.runstate`) so ``status`` can tell
+running, interrupted, finished and failed apart.
 """
 
 from __future__ import annotations
