@@ -54,7 +54,8 @@ def _root(
 
 
 # The arguments several commands share, spelled once.
-ConfigArg = Annotated[Path, typer.Argument(metavar="CONFIG", help="Campaign config (YAML).")]
+# readable=False: the config loader, not typer, says in one line why a file cannot be read
+ConfigArg = Annotated[Path, typer.Argument(metavar="CONFIG", readable=False, help="Campaign config (YAML).")]
 DirArg = Annotated[Path, typer.Argument(metavar="DIR", help="Campaign folder.")]
 CancelJobs = Annotated[bool, typer.Option("--cancel-jobs", help="On Ctrl-C or SIGTERM, cancel batch jobs too "
                                           "(default: leave them running for resume).")]

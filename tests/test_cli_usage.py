@@ -12,6 +12,7 @@ import os
 import shutil
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import pytest
@@ -100,15 +101,19 @@ def test_config_without_read_permission_is_one_line(tmp_path: Path) -> None:
     prefix = _unprivileged()
     if prefix is None:
         pytest.skip("running as root without setpriv: a permission bit cannot stop a read")
-    config = write_config(tmp_path, branin_config())
-    config.chmod(0o000)
-    # the interpreter must be reachable by the unprivileged user; a copy of the script's argv[0] is not needed
-    result = subprocess.run([*prefix, sys.executable, "-c", "import sortie.cli; sortie.cli.main()", "check", str(config)],
-                            capture_output=True, text=True, timeout=60, env={**os.environ, "HOME": str(tmp_path)})
+    folder = Path(tempfile.mkdtemp(prefix="sortie-noread-"))  # pytest's own tmp_path is closed to other users
+    try:
+        folder.chmod(0o755)
+        config = write_config(folder, branin_config())
+        config.chmod(0o000)  # the folder can be listed, the file cannot be read
+        result = subprocess.run([*prefix, sys.executable, "-c", "import sortie.cli; sortie.cli.main()", "check", str(config)],
+                                capture_output=True, text=True, timeout=60, env={**os.environ, "HOME": str(folder)})
+    finally:
+        shutil.rmtree(folder)
     if "Permission denied" in result.stderr and "error:" not in result.stderr:
         pytest.skip(f"the unprivileged user cannot start this interpreter ({result.stderr.strip()[:120]})")
     assert result.returncode == 2, result.stderr
-    assert_one_line(result.stderr, "cannot be read")
+    assert_one_line(result.stderr, "campaign.yaml: cannot be read", "Permission denied")
 
 
 @pytest.mark.parametrize(("args", "code", "fragment"), [
