@@ -30,9 +30,10 @@ configure_prefect()
 
 from prefect import flow, task  # noqa: E402  (settings must be in the environment first)
 from prefect.cache_policies import NO_CACHE  # noqa: E402
+from prefect.exceptions import TerminationSignal  # noqa: E402
 from prefect.futures import PrefectFuture  # noqa: E402
 from prefect.settings import PREFECT_FLOWS_HEARTBEAT_FREQUENCY, temporary_settings  # noqa: E402
-from prefect.states import Completed, Failed, State  # noqa: E402
+from prefect.states import Cancelled, Completed, Failed, State  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
 
 from sortie import campaign as campaign_folder  # noqa: E402
@@ -45,6 +46,7 @@ from sortie.goal import Goal  # noqa: E402
 from sortie.infill import MIN_POINTS, History, InfillSettings, fit_models, optimize_surface, propose_infill  # noqa: E402
 from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
 from sortie.plan import first_designs, initial_designs  # noqa: E402
+from sortie.runstate import Terminated  # noqa: E402
 from sortie.space import DesignSpace  # noqa: E402
 
 TERMINAL = (JobState.DONE, JobState.FAILED)
@@ -598,6 +600,13 @@ def campaign_flow(campaign_dir: str, cancel_jobs: bool = False) -> State:
         # A campaign that stops for a reason the user can act on is a failed run with a message,
         # not a crash: no traceback, and the reason travels back to the caller in the state.
         return Failed(message=str(err), data={"error": str(err)})
+    except (KeyboardInterrupt, TerminationSignal) as exc:
+        # Ctrl-C or SIGTERM is the user's decision, not a crash: the conductor has already put its
+        # cases back or left batch jobs for the next run; the flow ends Cancelled (Prefect logs no
+        # "Crash detected!" error) and run_campaign raises the interrupt again for the caller.
+        by_term = isinstance(exc, (Terminated, TerminationSignal))
+        return Cancelled(message="stopped by SIGTERM" if by_term else "stopped by Ctrl-C",
+                         data={"interrupted": "SIGTERM" if by_term else "SIGINT"})
     return Completed(data={"cases_done": counts["done"], "cases_failed": counts["failed"]})
 
 
@@ -608,6 +617,8 @@ def run_campaign(directory: Path, *, cancel_jobs: bool = False) -> dict[str, int
     ------
     CampaignError
         When the campaign stops before its plan is done; the message says why.
+    KeyboardInterrupt
+        On Ctrl-C; :class:`~sortie.runstate.Terminated` (a KeyboardInterrupt) on SIGTERM.
     """
     config, _ = campaign_folder.load(directory)  # the flow builds (and so checks) the adapter once
     # Routine GP ConvergenceWarnings (a length-scale at its bound) are kept in each surrogate's
@@ -615,10 +626,15 @@ def run_campaign(directory: Path, *, cancel_jobs: bool = False) -> dict[str, int
     # case threads running a few could slip through to the terminal. Silence that category here.
     warnings.filterwarnings("ignore", category=ConvergenceWarning)
     runner = ThreadPoolTaskRunner(max_workers=config.slots)
-    with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):
-        state = campaign_flow.with_options(task_runner=runner, flow_run_name=config.campaign.name)(
-            str(directory), cancel_jobs, return_state=True)
+    try:
+        with temporary_settings(updates={PREFECT_FLOWS_HEARTBEAT_FREQUENCY: None}):
+            state = campaign_flow.with_options(task_runner=runner, flow_run_name=config.campaign.name)(
+                str(directory), cancel_jobs, return_state=True)
+    except TerminationSignal:  # SIGTERM while Prefect's engine, not the flow, was running
+        raise Terminated() from None
     result = state.result(raise_on_failure=False)
+    if state.is_cancelled():
+        raise Terminated() if isinstance(result, dict) and result.get("interrupted") == "SIGTERM" else KeyboardInterrupt()
     if state.is_failed():
         message = result.get("error") if isinstance(result, dict) else state.message
         raise CampaignError(str(message or "the campaign flow failed"))

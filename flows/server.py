@@ -28,6 +28,7 @@ from sortie.errors import CampaignError
 
 LOG_NAME = "prefect-server.log"
 PID_NAME = "prefect-server.pid"
+DATABASE_NAME = "prefect.db"  # Prefect's default server database, in PREFECT_HOME
 _PR_SET_PDEATHSIG = 1
 # The run's own server records flow and task runs (the task run recorder) and nothing else: no
 # UI reads its event feed and nobody can define automations, deployments or schedules on it, so
@@ -49,19 +50,26 @@ def _free_port() -> int:
         return int(sock.getsockname()[1])
 
 
-def start_local_api(log_dir: Path, *, timeout_s: float = 120.0) -> str:
+def start_local_api(log_dir: Path, *, timeout_s: float = 120.0, fresh_database: bool = False) -> str:
     """Start a private Prefect API on a free loopback port and return its URL.
 
     Sets ``PREFECT_API_URL`` for this process, so call it before ``prefect`` is imported. The
     server is stopped at interpreter exit by a hook registered *before* Prefect's own, so it
     runs after Prefect has flushed its pending events (exit hooks run last-registered first);
     if the process dies without running hooks, the kernel's parent-death signal stops it.
+
+    ``fresh_database``: start from an empty Prefect database in ``PREFECT_HOME`` (pass it only
+    when that home belongs to the campaign). This is the retention rule: the ledger is the
+    campaign's record, Prefect's rows only serve the run in progress, so a campaign folder holds
+    one run's worth of them however often it is resumed.
     """
     spec = importlib.util.find_spec("prefect")
     if spec is None or spec.origin is None:
         raise CampaignError("Prefect is not installed in this environment; reinstall sortie (pip install -e .)")
     app_dir = str(Path(spec.origin).parent.parent)
     _stop_stale(Path(log_dir) / PID_NAME)
+    if fresh_database:
+        _remove_database(Path(os.environ["PREFECT_HOME"]))
     port = _free_port()
     url = f"http://127.0.0.1:{port}/api"
     log_path = Path(log_dir) / LOG_NAME
@@ -93,6 +101,15 @@ def _stop_stale(pid_file: Path) -> None:
     if b"prefect.server.api.server:create_app" in cmdline:
         with contextlib.suppress(ProcessLookupError, PermissionError):
             os.kill(pid, signal.SIGTERM)
+        deadline = time.monotonic() + 10  # gone before its database is replaced
+        while Path(f"/proc/{pid}").exists() and time.monotonic() < deadline:
+            time.sleep(0.1)
+
+
+def _remove_database(home: Path) -> None:
+    """Delete the Prefect database of an earlier run (SQLite file with its WAL and shared-memory files)."""
+    for name in (DATABASE_NAME, f"{DATABASE_NAME}-wal", f"{DATABASE_NAME}-shm", f"{DATABASE_NAME}-journal"):
+        (home / name).unlink(missing_ok=True)
 
 
 def _wait_healthy(proc: subprocess.Popen[bytes], url: str, timeout_s: float, log_path: Path) -> None:

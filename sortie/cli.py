@@ -1,28 +1,64 @@
 """The command line: a thin edge over the library.
 
 Each command parses its arguments, calls the library, and formats the answer. Every
-:class:`~sortie.errors.SortieError` becomes one line on stderr and exit code 2; ``--debug`` shows
-the traceback instead. Prefect is imported only inside ``run``, so ``check``, ``status`` and
-``export`` start fast.
+:class:`~sortie.errors.SortieError` and every usage error (unknown command or option, missing
+argument) becomes one line on stderr and exit code 2; ``--debug`` shows the traceback instead.
+Prefect is imported only inside ``run`` and ``resume``, so ``check``, ``status`` and ``export``
+start fast. A run records itself in the ledger (:mod:`sortie.runstate`) so ``status`` can tell
+running, interrupted, finished and failed apart.
 """
 
 from __future__ import annotations
 
+import importlib.metadata
 import json
 import os
 import sys
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, NoReturn
 
 import typer
 
 from sortie.errors import ConfigError, SortieError
 
-app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
-                  help="Run CFD design campaigns: designed experiments, solver runs, surrogates and infill.")
+# Plain (click-style) help: it shows every default as "[default: ...]" and no type after a flag;
+# rich markup would swallow a bracketed default as a style tag and print "<bool>" after each flag.
+app = typer.Typer(add_completion=False, pretty_exceptions_enable=False, rich_markup_mode=None)
 
 CAUTION = ("Caution: surrogate predictions must be confirmed by the real solver and by test; structural and "
            "safety sign-off follows your organisation's own rules and licensed practice.")
+
+
+def _print_version(value: bool) -> None:
+    if value:
+        try:
+            version = importlib.metadata.version("sortie")
+        except importlib.metadata.PackageNotFoundError:
+            version = "unknown (not installed; run 'pip install .')"
+        typer.echo(f"sortie {version}")
+        raise typer.Exit()
+
+
+@app.callback(invoke_without_command=True)
+def _root(
+    ctx: typer.Context,
+    version: Annotated[bool, typer.Option("--version", callback=_print_version, is_eager=True,
+                                          help="Print the version and exit.")] = False,
+) -> None:
+    """Run CFD design campaigns: designed experiments, solver runs, surrogates and infill."""
+    if ctx.invoked_subcommand is None:
+        # `sortie` alone: the help on stdout (so it can be paged), and exit 2 because a command was expected
+        typer.echo(ctx.get_help())
+        typer.echo("error: no command given; choose one of the commands above (sortie COMMAND --help for each)", err=True)
+        raise typer.Exit(2)
+
+
+# The arguments several commands share, spelled once.
+# readable=False: the config loader, not typer, says in one line why a file cannot be read
+ConfigArg = Annotated[Path, typer.Argument(metavar="CONFIG", readable=False, help="Campaign config (YAML).")]
+DirArg = Annotated[Path, typer.Argument(metavar="DIR", help="Campaign folder.")]
+CancelJobs = Annotated[bool, typer.Option("--cancel-jobs", help="On Ctrl-C or SIGTERM, cancel batch jobs too "
+                                          "(default: leave them running for resume).")]
 
 
 def _load_config(path: Path):
@@ -32,7 +68,7 @@ def _load_config(path: Path):
 
 
 @app.command()
-def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")]) -> None:
+def check(config: ConfigArg) -> None:
     """Validate a config without running anything.
 
     Example: sortie check configs/sled-aftbody.yaml
@@ -54,9 +90,10 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
 
 @app.command()
 def run(
-    config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")],
-    directory: Annotated[Path | None, typer.Option("--dir", help="Campaign folder [default: campaigns/<name>].")] = None,
-    cancel_jobs: Annotated[bool, typer.Option("--cancel-jobs", help="On Ctrl-C or SIGTERM, cancel batch jobs too (default: leave them running for resume).")] = False,
+    config: ConfigArg,
+    directory: Annotated[Path | None, typer.Option("--dir", metavar="DIR", show_default="campaigns/<name>",
+                                                   help="Campaign folder.")] = None,
+    cancel_jobs: CancelJobs = False,
 ) -> None:
     """Run a campaign to the end of its plan; an existing folder of the same campaign is continued.
 
@@ -79,8 +116,8 @@ def run(
 
 @app.command()
 def resume(
-    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
-    cancel_jobs: Annotated[bool, typer.Option("--cancel-jobs", help="On Ctrl-C or SIGTERM, cancel batch jobs too (default: leave them running for resume).")] = False,
+    directory: DirArg,
+    cancel_jobs: CancelJobs = False,
 ) -> None:
     """Carry on an interrupted campaign with its recorded config: nothing finished is lost or run twice.
 
@@ -97,39 +134,45 @@ def resume(
 
 
 def _conduct(directory: Path, cfg, lock, cancel_jobs: bool) -> None:
-    """Run the campaign flow under the held lock; an interrupt ends with the resume command."""
+    """Run the campaign flow under the held lock, recording the run (state, heartbeat, ending);
+    an interrupt ends with the resume command."""
     import signal
 
     from sortie.progress import LedgerWatcher
+    from sortie.runstate import RunRecord, Terminated
 
     if lock.stale_message():
         typer.echo(lock.stale_message())
+
+    def _terminate(signum: int, frame: object) -> None:
+        raise Terminated  # SIGTERM stops the run the same careful way as Ctrl-C
+
+    signal.signal(signal.SIGTERM, _terminate)
+    with RunRecord(directory) as record:
+        try:
+            _start_prefect(directory)
+            from sortie.flows.campaign import run_campaign
+
+            with LedgerWatcher(directory, cfg, stream=sys.stdout):
+                run_campaign(directory, cancel_jobs=cancel_jobs)
+        except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM as Terminated
+            by_term = isinstance(exc, Terminated)
+            record.end("interrupted", "stopped by SIGTERM" if by_term else "stopped by Ctrl-C (SIGINT)")
+            _print_interrupted(directory, by_term)
+            raise typer.Exit(143 if by_term else 130) from None
+    _print_result(directory, cfg)
+
+
+def _start_prefect(directory: Path) -> None:
+    """Prefect's settings (its home inside the campaign folder) and, unless PREFECT_API_URL names a
+    running server, the run's own API server."""
     from sortie.flows.runtime import configure_prefect
     from sortie.flows.server import start_local_api
 
-    configure_prefect()
+    owned_home = configure_prefect(directory)
     if not os.environ.get("PREFECT_API_URL"):
         typer.echo("starting a local Prefect API for this run (about 10 s; set PREFECT_API_URL to use a running server)")
-        start_local_api(directory)
-    from prefect.exceptions import TerminationSignal
-
-    from sortie.flows.campaign import run_campaign
-
-    received: list[int] = []
-
-    def _interrupt(signum: int, frame: object) -> None:
-        received.append(signum)
-        raise KeyboardInterrupt
-
-    signal.signal(signal.SIGTERM, _interrupt)  # SIGTERM stops the run the same careful way as Ctrl-C
-    try:
-        with LedgerWatcher(directory, cfg, stream=sys.stdout):
-            run_campaign(directory, cancel_jobs=cancel_jobs)
-    except (KeyboardInterrupt, TerminationSignal) as exc:
-        by_term = signal.SIGTERM in received or isinstance(exc, TerminationSignal)
-        _print_interrupted(directory, by_term)
-        raise typer.Exit(143 if by_term else 130) from None
-    _print_result(directory, cfg)
+        start_local_api(directory, fresh_database=owned_home)
 
 
 def _print_interrupted(directory: Path, by_term: bool) -> None:
@@ -198,8 +241,8 @@ def _fmt(v: object) -> str:
 
 @app.command()
 def status(
-    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
-    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+    directory: DirArg,
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object (with --watch: one per line as it changes).")] = False,
     watch: Annotated[bool, typer.Option("--watch", help="Follow a running campaign live until it ends (Ctrl-C to stop watching).")] = False,
 ) -> None:
     """Show what a campaign has done, from its ledger (safe while it runs).
@@ -209,21 +252,27 @@ def status(
     from sortie import campaign
     from sortie.ledger import Ledger, ledger_path
     from sortie.progress import LedgerWatcher, describe
+    from sortie.runstate import describe_state
     from sortie.status import summary
 
     cfg, _ = campaign.load(directory)
     if watch:
         try:
+            if as_json:  # one JSON object per line as it changes, nothing else: the last line is the final state
+                LedgerWatcher(directory, cfg, stream=sys.stdout).follow_json()
+                return
             with LedgerWatcher(directory, cfg, stream=sys.stdout) as watcher:
                 watcher.wait_until_finished()
         except KeyboardInterrupt:
-            pass  # stops the watching only; the campaign runs on elsewhere
+            if as_json:
+                return
+            # stops the watching only; the campaign runs on elsewhere
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
         s = summary(ledger, cfg)
     if as_json:
         typer.echo(json.dumps(s, indent=2))
         return
-    typer.echo(f"campaign {s['campaign']!r} in {directory}")
+    typer.echo(f"campaign {s['campaign']!r} in {directory}: {describe_state(s['state'])}")
     typer.echo(describe(s))
     if s["failures_by_class"]:
         typer.echo("failed cases by class: " + ", ".join(f"{k} {v}" for k, v in sorted(s["failures_by_class"].items())))
@@ -245,9 +294,9 @@ def status(
 
 @app.command()
 def export(
-    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
-    to: Annotated[Path, typer.Option("--to", help="Output file: .csv or .parquet.")],
-    what: Annotated[str, typer.Option("--what", help="designs (one row per design) or cases (one row per design and condition).")] = "designs",
+    directory: DirArg,
+    to: Annotated[Path, typer.Option("--to", metavar="FILE", help="Output file: .csv or .parquet.")],
+    what: Annotated[str, typer.Option("--what", metavar="TABLE", help="designs (one row per design) or cases (one row per design and condition).")] = "designs",
 ) -> None:
     """Write one row per design (parameters, objective, constraints, feasible, status) or per case.
 
@@ -280,8 +329,9 @@ def export(
 
 @app.command()
 def report(
-    directory: Annotated[Path, typer.Argument(help="Campaign folder.")],
-    out: Annotated[Path | None, typer.Option("--out", help="Report folder [default: DIR/report].")] = None,
+    directory: DirArg,
+    out: Annotated[Path | None, typer.Option("--out", metavar="FOLDER", show_default="DIR/report",
+                                             help="Report folder; give one when DIR cannot be written.")] = None,
 ) -> None:
     """Write an HTML report with its figures (PNG) from the ledger; works while the campaign runs.
 
@@ -295,12 +345,12 @@ def report(
 
 
 def main() -> None:
-    """Entry point: run the app, turning SortieError into one line and exit code 2."""
+    """Entry point: run the app; a SortieError or a usage error becomes one line and exit code 2."""
     debug = "--debug" in sys.argv
     if debug:
         sys.argv.remove("--debug")
     try:
-        code = app(standalone_mode=False)  # returns the exit code of typer.Exit in this mode
+        code = app(standalone_mode=False, prog_name="sortie")  # returns the exit code of typer.Exit in this mode
         if isinstance(code, int) and code:
             sys.exit(code)
     except SortieError as err:
@@ -314,13 +364,30 @@ def main() -> None:
         sys.exit(130)
     except typer.Exit as exc:
         sys.exit(exc.exit_code)
-    except Exception as exc:  # click usage errors come through here in standalone_mode=False
-        import click
+    except typer.TyperException as exc:
+        if debug:
+            raise
+        _usage_error(exc)
 
-        if isinstance(exc, click.ClickException):
-            exc.show()
-            sys.exit(2)
-        raise
+
+def _usage_error(exc: typer.TyperException) -> NoReturn:
+    """Print a usage error as one line with a hint, and exit 2.
+
+    ``typer.TyperException`` is the public base of every usage error typer raises (typer >= 0.25
+    bundles its own click, so ``click.ClickException`` no longer matches them). The failing
+    command's context, when the error carries one, names the command for the hint; otherwise the
+    first command word on the command line does.
+    """
+    ctx = getattr(exc, "ctx", None)
+    command = getattr(ctx, "command_path", None)
+    if not command:
+        names = {c.name or c.callback.__name__ for c in app.registered_commands if c.callback is not None}
+        command = " ".join(["sortie", *[a for a in sys.argv[1:] if a in names][:1]])
+    message = " ".join(exc.format_message().split())  # one line, whatever click wrapped
+    message = message[:1].lower() + message[1:].rstrip(".")
+    hint = "for the commands" if command == "sortie" else "for its arguments and options"
+    typer.echo(f"error: {message}; run '{command} --help' {hint}", err=True)
+    sys.exit(2)
 
 
 if __name__ == "__main__":

@@ -96,6 +96,9 @@ CREATE TABLE analyses (
     kind TEXT NOT NULL,
     data_json TEXT NOT NULL
 );
+-- one row per orchestrator run (see sortie.runstate): who ran it, its heartbeat, how it ended
+CREATE TABLE runs (id INTEGER PRIMARY KEY, pid INTEGER NOT NULL, host TEXT NOT NULL,
+    started_at REAL NOT NULL, heartbeat_at REAL NOT NULL, ended_at REAL, outcome TEXT, reason TEXT);
 CREATE INDEX cases_by_state ON cases(state);
 CREATE INDEX cases_by_design ON cases(design_id);
 CREATE INDEX designs_by_status ON designs(status);
@@ -106,12 +109,14 @@ CREATE INDEX attempts_by_state ON attempts(state);
 
 # How a ledger of an older schema version becomes the current one: the statements that take
 # version N to N + 1, run in one transaction on the first writable open (``resume``, ``run``).
-# Version 2 added the indexes that the per-event queries filter by; without them every case
+# Version 2 added the indexes that the per-event queries filter by, and the runs table; without them every case
 # finished would scan the designs table, so an old ledger is upgraded, never read slowly.
 _MIGRATIONS: dict[int, tuple[str, ...]] = {
     1: (
         "CREATE TABLE IF NOT EXISTS analyses (id INTEGER PRIMARY KEY, at REAL NOT NULL, kind TEXT NOT NULL,"
         " data_json TEXT NOT NULL)",
+        "CREATE TABLE IF NOT EXISTS runs (id INTEGER PRIMARY KEY, pid INTEGER NOT NULL, host TEXT NOT NULL,"
+        " started_at REAL NOT NULL, heartbeat_at REAL NOT NULL, ended_at REAL, outcome TEXT, reason TEXT)",
         "CREATE INDEX IF NOT EXISTS cases_by_state ON cases(state)",
         "CREATE INDEX IF NOT EXISTS cases_by_design ON cases(design_id)",
         "CREATE INDEX IF NOT EXISTS designs_by_status ON designs(status)",
@@ -423,6 +428,35 @@ class Ledger:
             return []
         return [{"id": r["id"], "at": r["at"], "kind": r["kind"], "data": json.loads(r["data_json"])} for r in rows]
 
+    # -- orchestrator runs (campaign state) --------------------------------------------------
+    def start_run(self, pid: int, host: str, *, unended_reason: str) -> int:
+        """Record that an orchestrator starts; runs still open (their process died) end as interrupted."""
+        now = time.time()
+        with self.transaction() as c:
+            c.execute("UPDATE runs SET outcome = 'interrupted', reason = ? WHERE outcome IS NULL", (unended_reason,))
+            cur = c.execute("INSERT INTO runs(pid, host, started_at, heartbeat_at) VALUES (?, ?, ?, ?)",
+                            (pid, host, now, now))
+        return int(cur.lastrowid)
+
+    def beat(self, run_id: int) -> None:
+        """The run is alive: one short write, every few seconds."""
+        with self.transaction() as c:
+            c.execute("UPDATE runs SET heartbeat_at = ? WHERE id = ?", (time.time(), run_id))
+
+    def end_run(self, run_id: int, outcome: str, reason: str | None = None) -> None:
+        """Record how a run ended: finished, failed or interrupted, with the reason."""
+        now = time.time()
+        with self.transaction() as c:
+            c.execute("UPDATE runs SET ended_at = ?, heartbeat_at = ?, outcome = ?, reason = ? WHERE id = ?",
+                      (now, now, outcome, reason, run_id))
+
+    def runs(self) -> list[dict[str, Any]]:
+        """Every orchestrator run, oldest first; [] for a ledger written before runs were recorded."""
+        try:
+            return [dict(r) for r in self._conn.execute("SELECT * FROM runs ORDER BY id")]
+        except sqlite3.OperationalError:  # no runs table yet, opened read-only
+            return []
+
     def event(self, kind: str, message: str, data: Mapping[str, Any] | None = None) -> None:
         with self.transaction() as c:
             self._event(c, kind, message, data)
@@ -633,7 +667,7 @@ def ledger_path(campaign_dir: Path) -> Path:
     return Path(campaign_dir) / LEDGER_NAME
 
 
-def writable_dir(path: Path) -> None:
+def writable_dir(path: Path, *, what: str = "the campaign folder", hint: str = "choose a writable folder with --dir") -> None:
     """Create ``path`` if needed and prove it is writable, or raise one clear LedgerError."""
     try:
         Path(path).mkdir(parents=True, exist_ok=True)
@@ -641,5 +675,5 @@ def writable_dir(path: Path) -> None:
         probe.write_bytes(b"x")
         probe.unlink()
     except OSError as err:
-        raise LedgerError(f"{path}: the campaign folder cannot be written ({err.strerror or err}); choose a writable folder with --dir") from None
+        raise LedgerError(f"{path}: {what} cannot be written ({err.strerror or err}); {hint}") from None
 

@@ -8,6 +8,7 @@ with no control characters, so logs of overnight runs stay readable.
 
 from __future__ import annotations
 
+import json
 import sqlite3
 import threading
 from pathlib import Path
@@ -16,7 +17,14 @@ from typing import Any, TextIO
 from sortie.config import CampaignConfig
 from sortie.errors import LedgerError
 from sortie.ledger import Ledger, ledger_path
+from sortie.runstate import campaign_state
 from sortie.status import summary
+
+
+def planned_cases(s: dict[str, Any]) -> int:
+    """Cases the plan needs in all: its designs times the conditions (more if retries or an
+    accepted config change recorded extra designs), not just the cases created so far."""
+    return max(s["cases_total"], s["designs_planned"] * s["n_conditions"])
 
 
 def describe(s: dict[str, Any], slots: int | None = None) -> str:
@@ -26,7 +34,7 @@ def describe(s: dict[str, Any], slots: int | None = None) -> str:
     if best is not None:
         shown = f"design {best['design']} objective {best['objective']:.6g} ({'feasible' if best['feasible'] else 'infeasible'})"
     eta = eta_s(s, slots)
-    return (f"cases {s['cases_done']}/{s['cases_total']} done, {s['cases_running']} running, {s['cases_planned']} queued, "
+    return (f"cases {s['cases_done']}/{planned_cases(s)} done, {s['cases_running']} running, {s['cases_planned']} queued, "
             f"{s['cases_failed']} failed | designs {s['designs_done'] + s['designs_failed']}/{s['designs_planned']} | "
             f"best: {shown}" + ("" if eta is None else f" | ETA {_clock(eta)}"))
 
@@ -37,8 +45,7 @@ def eta_s(s: dict[str, Any], slots: int | None) -> float | None:
     Proposal time and queueing on a cluster are not in it, so it is a lower bound early on."""
     if not s.get("mean_case_s") or not slots:
         return None
-    total = max(s["cases_total"], s["designs_planned"] * s["n_conditions"])
-    left = max(total - s["cases_done"] - s["cases_failed"], 0)
+    left = max(planned_cases(s) - s["cases_done"] - s["cases_failed"], 0)
     return left * s["mean_case_s"] / slots
 
 
@@ -72,6 +79,12 @@ class SummaryReader:
             if version != self._version or self._last is None:
                 self._last = summary(self._ledger, self.config)
                 self._version = version
+            else:
+                # Nothing was written, but the orchestrator may have died since: the state comes from the
+                # kernel's view of the lock as well as the ledger, so it is asked again on every read.
+                last = self._last
+                plan_done = last["designs_total"] >= last["designs_planned"] and not last["designs_pending"]
+                self._last = {**last, "state": campaign_state(self.directory, self._ledger, plan_done=plan_done)}
             return self._last
         except (LedgerError, sqlite3.Error):
             self.close()
@@ -97,7 +110,6 @@ class LedgerWatcher:
         self.tty = bool(getattr(stream, "isatty", lambda: False)())
         # the plan's full size, so the bars do not grow as infill adds designs
         self.target_designs = config.target_designs()
-        self.target_cases = self.target_designs * len(config.condition_list())
 
     def __enter__(self) -> LedgerWatcher:
         self._thread.start()
@@ -108,11 +120,11 @@ class LedgerWatcher:
         self._thread.join(timeout=5)
 
     def wait_until_finished(self) -> None:
-        """Block until the ledger shows the plan done (every design recorded and scored)."""
+        """Block until no orchestrator runs the campaign (its plan done, or the run stopped or died)."""
         try:
             while True:
                 s = self._read()
-                if s is not None and s["designs_total"] >= s["designs_planned"] and not s["designs_pending"]:
+                if s is not None and s["state"]["state"] != "running":
                     return
                 self._stop.wait(self.interval_s)
         finally:
@@ -124,6 +136,22 @@ class LedgerWatcher:
         if reader is None:
             reader = self._readers.reader = SummaryReader(self.directory, self.config)
         return reader.read()
+
+    def follow_json(self) -> None:
+        """Write the summary as one JSON object per line whenever it changes, until no
+        orchestrator runs the campaign; the last line is the final state. For scripts: nothing
+        else is written."""
+        last = None
+        while True:
+            s = self._read()
+            if s is not None:
+                line = json.dumps(s, separators=(",", ":"))
+                if line != last:
+                    print(line, file=self.stream, flush=True)
+                    last = line
+                if s["state"]["state"] != "running":
+                    return
+            self._stop.wait(self.interval_s)
 
     def _loop(self) -> None:
         try:
@@ -172,7 +200,7 @@ class LedgerWatcher:
                     best = s["best"]
                     best_text = "" if best is None else f"best design {best['design']}: {best['objective']:.6g}" + ("" if best["feasible"] else " (infeasible)")
                     eta = eta_s(s, self.config.slots)
-                    bar.update(cases, total=max(s["cases_total"], self.target_cases), completed=s["cases_done"] + s["cases_failed"],
+                    bar.update(cases, total=planned_cases(s), completed=s["cases_done"] + s["cases_failed"],
                                detail=f"{s['cases_running']} running, {s['cases_planned']} queued, {s['cases_failed']} failed"
                                + ("" if eta is None else f", ETA {_clock(eta)}"))
                     bar.update(designs, completed=s["designs_done"] + s["designs_failed"], detail=best_text)

@@ -32,8 +32,10 @@ from markupsafe import Markup
 from sortie import figures
 from sortie.api import ApiError, CampaignSurrogate, CampaignView, Snapshot, open_campaign
 from sortie.config import CampaignConfig
+from sortie.errors import LedgerError
 from sortie.infill import MIN_POINTS
-from sortie.ledger import DesignRow
+from sortie.ledger import DesignRow, writable_dir
+from sortie.runstate import campaign_state, describe_state
 from sortie.status import best_design
 
 CAUTION = ("Surrogate predictions must be confirmed by the real solver and by test; the design decision and any "
@@ -132,7 +134,8 @@ def write_report(directory: str | Path, out: str | Path | None = None) -> Path:
     """
     view = open_campaign(directory)
     target = Path(out) if out is not None else view.directory / REPORT_DIR
-    target.mkdir(parents=True, exist_ok=True)
+    hint = "write it elsewhere with --out FOLDER" if out is None else "choose a writable folder with --out"
+    writable_dir(target, what="the report folder", hint=hint)
     for old in target.glob("fig-*.png"):
         old.unlink()
     ctx = _Context(view, view.snapshot(), target)
@@ -158,7 +161,10 @@ def write_report(directory: str | Path, out: str | Path | None = None) -> Path:
                             written=time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(ctx.snap.taken_at)),
                             status=_status_line(ctx))
     index = target / "index.html"
-    index.write_text(page, encoding="utf-8")
+    try:
+        index.write_text(page, encoding="utf-8")
+    except OSError as err:  # the disk filled up while the figures were written
+        raise LedgerError(f"{index}: the report cannot be written ({err.strerror or err}); {hint}") from None
     return index
 
 
@@ -166,14 +172,15 @@ def write_report(directory: str | Path, out: str | Path | None = None) -> Path:
 
 
 def _status_line(ctx: _Context) -> str:
+    """The campaign's state (running, interrupted, finished, failed) and how far its plan is."""
     designs = ctx.snap.designs
     pending = sum(d.status == "pending" for d in designs)
     planned = ctx.config.target_designs()
-    if pending == 0 and len(designs) >= planned:
-        return f"finished: {len(designs)} of {planned} planned designs recorded"
+    with ctx.view.ledger() as ledger:
+        state = campaign_state(ctx.view.directory, ledger, plan_done=pending == 0 and len(designs) >= planned)
     running = sum(c.state in ("submitting", "running") for c in ctx.snap.cases)
-    return (f"in progress (or stopped): {len(designs)} of {planned} planned designs recorded, {pending} pending, "
-            f"{running} cases in flight")
+    return (f"state: {describe_state(state, now=ctx.snap.taken_at)}; {len(designs)} of {planned} planned designs "
+            f"recorded, {pending} pending, {running} cases in flight")
 
 
 def _attempt_seconds(attempts: list[dict[str, Any]], now: float) -> np.ndarray:

@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING, Any
 
 from sortie.config import CampaignConfig
 from sortie.ledger import DESIGN_STATES, DesignRow, Ledger
+from sortie.runstate import campaign_state
 
 if TYPE_CHECKING:  # pandas costs a quarter of a second to import; `sortie status` does not need it
     import pandas as pd
@@ -28,16 +29,18 @@ def best_design(designs: list[DesignRow], sense: str) -> DesignRow | None:
 
 
 def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
-    """Counts of designs and cases by state, the budget, and the best design so far.
+    """The campaign's state, counts of designs and cases by state, the budget, and the best design so far.
 
     Every figure is an aggregate query on indexed columns (or a short list: the cases in flight,
-    the analyses), so the cost of a summary does not grow with the number of cases recorded.
+    the analyses, the run records), so the cost of a summary does not grow with the number of cases.
     """
     designs = {**dict.fromkeys(DESIGN_STATES, 0), **ledger.tally("designs", "status")}
     cases = ledger.count_cases()
     best = ledger.best_design(config.goal.sense)
+    plan_done = sum(designs.values()) >= config.target_designs() and not designs["pending"]
     return {
         "campaign": config.campaign.name,
+        "state": campaign_state(ledger.path.parent, ledger, plan_done=plan_done),
         "budget_designs": config.budget.designs,
         "budget_cases": config.budget.cases,
         "designs_planned": config.target_designs(),

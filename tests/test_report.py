@@ -202,7 +202,8 @@ def test_a_campaign_caught_running(tmp_path: Path) -> None:
     directory = simulate_campaign(tmp_path, sled_config(tmp_path), running=8)
     page = check_report(write_report(directory))
     assert (directory / "report" / "index.html").is_file(), "the default place is <campaign>/report"
-    assert "in progress (or stopped): 13 of 18 planned designs recorded, 8 pending" in page.plain
+    # a simulated ledger has no orchestrator run recorded: it is not running, and its plan is not done
+    assert "state: interrupted" in page.plain and "13 of 18 planned designs recorded, 8 pending" in page.plain
     assert "The campaign has not chosen a surrogate yet" in page.plain
     assert "fig-convergence.png" in page.images and "fig-parity.png" in page.images
     in_progress = next(rows for cls, rows in page.tables if [t for _, t in rows[0]][:2] == ["design", "stage"]
@@ -261,7 +262,7 @@ def test_finished_campaign_report(finished: Path, finished_report: Path) -> None
     page = check_report(finished_report)
     assert set(page.images) == {"fig-convergence.png", "fig-parity.png", "fig-slices.png", "fig-contours.png",
                                 "fig-quantities.png"}
-    assert "finished: 18 of 18 planned designs recorded" in page.plain
+    assert "state: finished; 18 of 18 planned designs recorded" in page.plain
     assert_top_designs_equal_the_ledger(page, finished)
     failed = next(rows for cls, rows in page.tables if cls == "designs" and "failed cases" in [t for _, t in rows[0]])
     with Ledger.open(ledger_path(finished), readonly=True) as ledger:
