@@ -35,6 +35,7 @@ class SlurmInfo:
     """What a test may want to know about the Slurm it runs against."""
 
     partition: str
+    #: CPUTot summed over the partition's nodes (``scontrol show node``): no more one-CPU jobs run at once
     cpus: int
 
 
@@ -49,26 +50,38 @@ def _probe() -> tuple[SlurmInfo | None, str]:
     if missing:
         return None, f"Slurm's {', '.join(missing)} not on PATH; {START_HINT}"
     try:
-        result = _run(["sinfo", "-h", "-o", "%P|%T|%c"])
+        result = _run(["sinfo", "-h", "-o", "%P|%T"])
     except subprocess.TimeoutExpired:
         return None, f"sinfo did not answer within 15 s (no Slurm controller?); {START_HINT}"
     if result.returncode != 0:
         message = (result.stderr.strip().splitlines() or ["no message"])[-1]
         return None, f"the Slurm controller does not answer ({message}); {START_HINT}"
     default = first = None
-    cpus = 0
     for line in result.stdout.splitlines():
-        partition, state, node_cpus = [*line.split("|"), "", "", ""][:3]
+        partition, state = [*line.split("|"), "", ""][:2]
         if state.rstrip("*~#!%$@^-") not in _READY_NODE_STATES:
             continue
         name = partition.rstrip("*")
         first = first or name
         if partition.endswith("*"):
             default = name
-        cpus = max(cpus, int(node_cpus) if node_cpus.isdigit() else 1)
     if first is None:
         return None, f"Slurm answers but no node is ready (sinfo: {result.stdout.strip() or 'nothing'}); {START_HINT}"
-    return SlurmInfo(partition=default or first, cpus=cpus), ""
+    partition = default or first
+    cpus = _partition_cpus(partition)
+    if cpus < 1:
+        return None, f"scontrol show node gives no CPUTot for the nodes of partition {partition!r}; {START_HINT}"
+    return SlurmInfo(partition=partition, cpus=cpus), ""
+
+
+def _partition_cpus(partition: str) -> int:
+    """CPUTot summed over the partition's nodes, from ``scontrol show node -o`` (one node a line)."""
+    total = 0
+    for line in _run(["scontrol", "show", "node", "-o"]).stdout.splitlines():
+        fields = dict(f.split("=", 1) for f in line.split() if "=" in f)
+        if partition in fields.get("Partitions", "").split(",") and fields.get("CPUTot", "").isdigit():
+            total += int(fields["CPUTot"])
+    return total
 
 
 def slurm_available() -> tuple[bool, str]:

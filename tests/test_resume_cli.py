@@ -12,6 +12,7 @@ import random
 import signal
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -23,6 +24,7 @@ from tests.conftest import DEMO_CONFIG
 
 pytestmark = pytest.mark.slow
 BUDGET = 18
+INITIAL_DESIGNS = 8
 
 
 @pytest.fixture
@@ -34,7 +36,7 @@ def _config(tmp_path: Path, **changes: object) -> Path:
     config = yaml.safe_load(DEMO_CONFIG.read_text())
     config["solver"]["template"] = str(DEMO_CONFIG.parent / "cases" / "template")
     config["conditions"] = {"mach": [0.6, 1.3]}
-    config["plan"] = {"initial": {"method": "sobol", "designs": 8}, "infill": {"candidates": 256, "restarts": 2}}
+    config["plan"] = {"initial": {"method": "sobol", "designs": INITIAL_DESIGNS}, "infill": {"candidates": 256, "restarts": 2}}
     config["budget"] = {"designs": BUDGET}
     config["slots"] = 2
     config.update(changes)
@@ -59,6 +61,54 @@ def _log_counts(log: Path) -> tuple[dict[str, int], dict[str, int]]:
     return starts, finishes
 
 
+class _Run:
+    """One ``sortie`` process whose stdout is read as it comes, so the test can wait for a line."""
+
+    def __init__(self, args: list[str], env: dict[str, str], cwd: Path, stderr: Path) -> None:
+        with stderr.open("w") as err:
+            self.proc = subprocess.Popen([sys.executable, "-m", "sortie.cli", *args], stdout=subprocess.PIPE,
+                                         stderr=err, text=True, env=env, cwd=cwd)
+        self.stderr = stderr
+        self._lines: list[str] = []
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
+
+    def _read(self) -> None:
+        assert self.proc.stdout is not None
+        for line in self.proc.stdout:
+            self._lines.append(line)
+
+    def wait_for(self, text: str, deadline: float) -> None:
+        while not any(text in line for line in list(self._lines)):
+            assert self.proc.poll() is None, f"the run ended before printing {text!r}: {self.stderr.read_text()}"
+            assert time.monotonic() < deadline, f"the run printed no {text!r} in time: {self.out()}"
+            time.sleep(0.02)
+
+    def kill(self) -> None:
+        os.kill(self.proc.pid, signal.SIGKILL)
+        self.proc.wait()
+        self._reader.join(timeout=10)
+
+    def out(self) -> str:
+        return "".join(self._lines)
+
+
+def _started(log: Path, directory: Path, *, since: int = 0, infill_only: bool = False) -> set[str]:
+    """Case folders whose solver started after byte ``since`` of the mock solver's log, all or only
+    those of infill designs (a case's folder is committed to the ledger before its solver starts)."""
+    if not log.exists():
+        return set()
+    with log.open("rb") as f:
+        f.seek(since)
+        lines = f.read().decode().splitlines()
+    folders = {str(Path(line.split()[2]).parent) for line in lines if line.startswith("start ")}
+    if not infill_only:
+        return folders
+    with Ledger.open(ledger_path(directory), readonly=True) as ledger:
+        infill = {d.id for d in ledger.designs() if d.stage == "infill"}
+        return folders & {c.workdir for c in ledger.cases() if c.design_id in infill}
+
+
 def _snapshot(directory: Path) -> dict[int, tuple[dict, int]]:
     if not ledger_path(directory).exists():
         return {}
@@ -73,25 +123,38 @@ def test_kill_9_at_ten_moments_then_resume_loses_and_repeats_nothing(tmp_path: P
     config = _config(tmp_path)
     directory = tmp_path / "camp"
     total_cases = BUDGET * 2
+    infill_cases = (BUDGET - 1 - INITIAL_DESIGNS) * 2  # after the baseline and the initial design
     rng = random.Random(5)
-    # Kill points spread over the initial design (cases 0-17) and the infill (18-35): after a
-    # number of solver starts, plus a random delay so the kill lands in different phases
-    # (recording, submitting, proposing, waiting).
-    kill_after = [1, 3, 6, 10, 14, 18, 22, 26, 29, 32]
+    # Each run is killed once it has itself started a few solvers, then after a random delay, so the
+    # kills land in different phases (recording, submitting, proposing, waiting). Counting each run's
+    # own starts, never a total across runs, means no run is killed before it has done anything. The
+    # first six count every start (about the initial design, cases 0-17); the last four count only
+    # infill starts, spread over the infill cases not yet started, so they fall in the infill stage
+    # and the final resume is left work however far the earlier runs got.
+    first_kills = [1, 2, 3, 4, 4, 4]
+    infill_kills = 4
     kept: dict[int, tuple[dict, int]] = {}
-    for i, threshold in enumerate(kill_after):
+    for i in range(len(first_kills) + infill_kills):
         args = ["run", str(config), "--dir", str(directory)] if i == 0 else ["resume", str(directory)]
-        proc = _start(args, run_env, tmp_path)
+        run = _Run(args, run_env, tmp_path, tmp_path / f"run{i}.err")
         deadline = time.monotonic() + 120
-        while sum(_log_counts(log)[0].values()) < threshold and proc.poll() is None:
+        if i > 0:  # its first words: the killed run's lock is taken over with a message, before any kill
+            run.wait_for("took over the lock", deadline)
+        since = log.stat().st_size if log.exists() else 0
+        infill_only = i >= len(first_kills)
+        if infill_only:  # this run's share of the infill cases not yet started, one share left for the end
+            runs_left = len(first_kills) + infill_kills - i
+            infill_left = infill_cases - len(_started(log, directory, infill_only=True))
+            wanted = max(1, infill_left // (runs_left + 1))
+        else:
+            wanted = first_kills[i]
+        while len(_started(log, directory, since=since, infill_only=infill_only)) < wanted:
+            assert run.proc.poll() is None, f"the run ended before kill {i + 1}: {run.stderr.read_text()}"
             assert time.monotonic() < deadline, "the campaign made no progress"
             time.sleep(0.02)
         time.sleep(rng.uniform(0.0, 0.4))
-        assert proc.poll() is None, f"the run ended before kill {i + 1}: {proc.communicate()[1]}"
-        os.kill(proc.pid, signal.SIGKILL)
-        out, _ = proc.communicate()
-        if i > 0:
-            assert "took over the lock" in out, "the killed run's lock was taken over with a message"
+        assert run.proc.poll() is None, f"the run ended before kill {i + 1}: {run.stderr.read_text()}"
+        run.kill()
         now = _snapshot(directory)
         for case_id, before in kept.items():
             assert now.get(case_id) == before, f"finished case {case_id} was lost or changed"

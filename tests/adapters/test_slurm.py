@@ -302,12 +302,18 @@ def test_one_squeue_per_refresh_for_all_jobs_polled_from_many_threads(slurm: Slu
     runner = Counting()
     interval = 0.5
     adapter = _sleeper_adapter(tmp_path, runner=runner, poll_interval_s=interval)
-    n_jobs = 6
+    # More one-CPU jobs than the partition has CPUs (CPUTot from `scontrol show node`), so once one
+    # runs, some must still wait, whatever the host's size and whoever else shares the Slurm.
+    n_jobs = slurm.cpus + 4
     handles = []
     for i in range(n_jobs):
         handles.append(adapter.start(_case(tmp_path, case_id=i + 1, values={"seconds": 120})))
         slurm_jobs.append(handles[-1].job_id)
     assert runner.count("sbatch") == n_jobs
+    end = time.monotonic() + 60
+    while JobState.RUNNING not in {adapter.poll(h) for h in handles}:
+        assert time.monotonic() < end, "no job started within 60 s"
+        time.sleep(interval)
     runner.calls.clear()
 
     window_s = 2.0
@@ -335,7 +341,7 @@ def test_one_squeue_per_refresh_for_all_jobs_polled_from_many_threads(slurm: Slu
     for query in queries:
         assert set(query[query.index("-j") + 1].split(",")) == wanted  # every query covers every job
     assert sum(states.values()) > 10 * len(queries)  # many polls per query
-    assert states[JobState.RUNNING] > 0 and states[JobState.QUEUED] > 0  # 2 cores: some run, some wait
+    assert states[JobState.RUNNING] > 0 and states[JobState.QUEUED] > 0  # more jobs than CPUs: some run, some wait
     for h in handles:
         adapter.cancel(h)
 

@@ -14,6 +14,7 @@ from sortie.adapters.registry import check_solver
 from sortie.config import load_config
 from sortie.ledger import Ledger, ledger_path
 from tests.conftest import FIXTURES, branin_config, write_config
+from tests.fixtures.models import HOLD_CAMPAIGN_ENV
 
 pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("prefect_api")]
 
@@ -58,8 +59,11 @@ def test_branin_campaign_gets_within_5_percent_of_the_minimum_in_30_evaluations(
     assert models["objective"]["chosen"] in ("gp", "quadratic")
 
 
-def test_four_slots_keep_four_distinct_designs_in_flight(tmp_path: Path) -> None:
-    config = _branin_infill("branin_slow", slots=4, budget={"designs": 20})
+def test_four_slots_keep_four_distinct_designs_in_flight(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # branin_held holds each infill case until four are in the solver at once: they meet only if the
+    # conductor proposes while earlier cases run (else the first waits out its 120 s safety net).
+    monkeypatch.setenv(HOLD_CAMPAIGN_ENV, str(tmp_path / "camp"))
+    config = _branin_infill("branin_held", slots=4, budget={"designs": 20})
     directory = _run(tmp_path, config)
     with Ledger.open(ledger_path(directory)) as ledger:
         designs, cases = ledger.designs(), ledger.cases()
