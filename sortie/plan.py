@@ -13,14 +13,11 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from sortie import sampling
+from sortie.sizes import DEFAULT_FACTORIAL_LEVELS, DEFAULT_SWEEP_LEVELS
 from sortie.space import DesignSpace
 
 if TYPE_CHECKING:
     from sortie.config import PlanSection, ScreeningSpec, StageSpec
-
-DEFAULT_FACTORIAL_LEVELS = 3
-DEFAULT_SWEEP_LEVELS = 5
-
 
 @dataclass(frozen=True)
 class ProposedDesign:
