@@ -108,7 +108,7 @@ def load_function(spec: str, base_dir: Path) -> Callable[..., Any]:
         raise
     except (Exception, SystemExit) as exc:  # any import-time failure of user code becomes one line
         if isinstance(exc, SystemExit):
-            raise AdapterError(f"solver.function: cannot import {shown(target)} (it calls sys.exit({shown(exc.code, 20)}) "
+            raise AdapterError(f"solver.function: cannot import {shown(target)} (it calls sys.exit({shown(exc.code, 60)}) "
                                f"while imported); a solver module must only define {name}(parameters, condition) "
                                f"at import") from None
         raise AdapterError(f"solver.function: cannot import {shown(target)} ({type(exc).__name__}: {clip(str(exc))})") from None

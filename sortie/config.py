@@ -110,7 +110,9 @@ def case_relative_problem(name: str) -> str | None:
         return "is empty; give a file name relative to the case folder"
     if "\0" in name:
         return "contains a NUL character; give a file name relative to the case folder"
-    if PurePosixPath(name).is_absolute() or PureWindowsPath(name).drive or name.startswith("~"):
+    if name.startswith("~"):
+        return "starts at a home folder ('~'); allowed: a path relative to the case folder, such as result.out"
+    if PurePosixPath(name).is_absolute() or PureWindowsPath(name).drive:
         return "is an absolute path; allowed: a path relative to the case folder, such as result.out"
     if ".." in PurePosixPath(name.replace("\\", "/")).parts:
         return "contains '..'; allowed: a path inside the case folder, such as output/result.out"
@@ -476,8 +478,8 @@ class CampaignConfig(_Section):
             n_initial = sizes.initial_size(self.plan.initial, self.space())
             n_screen = self.designs_before_infill() - 1 - n_initial
             needed = 1 + n_screen + n_initial + self.plan.n_confirmations()
-            what = f"the {n_screen} designs of plan.screening, " if n_screen else ""
-            what = f"the baseline plus {what}the {n_initial} designs of plan.initial ({self.plan.initial.method})"
+            what = f"the {sizes.count(n_screen)} designs of plan.screening, " if n_screen else ""
+            what = f"the baseline plus {what}the {sizes.count(n_initial)} designs of plan.initial ({self.plan.initial.method})"
             if self.plan.classic is not None:
                 what += " and the confirmation design of plan.classic"
             elif self.plan.confirmation is not None:
@@ -612,24 +614,23 @@ def load_config(path: Path, *, check_solver: SolverCheck | None = None) -> Campa
 def read_config_text(path: Path) -> str:
     """The text of a config file, or one ConfigError line saying why it cannot be had.
 
-    The file is opened once and read up to one byte past the size cap, so a huge file, a device
-    (``/dev/zero``) or a FIFO costs nothing before it is refused.
+    The file is looked at before it is opened (opening a FIFO would wait for a writer) and read
+    up to one byte past the size cap, so a huge file or a device (``/dev/zero``) costs nothing
+    before it is refused.
     """
     where = clip(str(path))
     try:
+        info = os.stat(path)
+        if stat.S_ISDIR(info.st_mode):
+            raise ConfigError([f"{where}: is a folder; give the campaign's YAML file"])
+        if not stat.S_ISREG(info.st_mode):
+            raise ConfigError([f"{where}: is not a regular file (a device, pipe or socket); give the campaign's YAML file"])
+        if info.st_size > MAX_BYTES:
+            raise ConfigError([too_big(where, info.st_size)])
         with open(path, "rb") as handle:
-            info = os.fstat(handle.fileno())
-            if stat.S_ISDIR(info.st_mode):
-                raise ConfigError([f"{where}: is a folder; give the campaign's YAML file"])
-            if not stat.S_ISREG(info.st_mode):
-                raise ConfigError([f"{where}: is not a regular file (a device, pipe or socket); give the campaign's YAML file"])
-            if info.st_size > MAX_BYTES:
-                raise ConfigError([too_big(where, info.st_size)])
             data = handle.read(MAX_BYTES + 1)
     except FileNotFoundError:
         raise ConfigError([f"{where}: no such config file"]) from None
-    except IsADirectoryError:
-        raise ConfigError([f"{where}: is a folder; give the campaign's YAML file"]) from None
     except PermissionError:
         raise ConfigError([f"{where}: cannot be read (permission denied); allow reading it or copy it"]) from None
     except OSError as err:
@@ -720,13 +721,17 @@ def format_validation_errors(err: ValidationError, model: type[BaseModel], prefi
         loc = [p for p in e["loc"] if not (isinstance(p, str) and p in _TYPE_TAGS)]
         path = prefix + ".".join(clip(str(p), 40) for p in loc) if loc else (prefix.rstrip(".") or "config")
         kind = e["type"]
-        if kind in _TYPE_ERRORS and path in typed:
+        boolean = isinstance(e.get("input"), YamlBoolean)
+        if boolean:  # one line per key, not one per list item
+            while loc and isinstance(loc[-1], int):
+                loc.pop()
+            path = prefix + ".".join(clip(str(p), 40) for p in loc) if loc else (prefix.rstrip(".") or "config")
+        if (kind in _TYPE_ERRORS or boolean) and path in typed:
             continue  # one line per key when a value fits none of the types of a union
-        if kind in _TYPE_ERRORS:
+        if kind in _TYPE_ERRORS or boolean:
             typed.add(path)
-        if isinstance(e.get("input"), YamlBoolean) or (kind in _TYPE_ERRORS | {"literal_error"}
-                                                        and isinstance(e.get("input"), bool)):
-            lines.append(f"{path}: got {e['input']!r}, a YAML boolean (unquoted yes, no, on, off, true, false); "
+        if boolean:
+            lines.append(f"{path}: holds {e['input']!r}, a YAML boolean (unquoted yes, no, on, off, true, false); "
                          f"quote it ('yes') to mean text, or give a number")
         elif kind == "extra_forbidden":
             *parent, key = e["loc"]
@@ -738,12 +743,14 @@ def format_validation_errors(err: ValidationError, model: type[BaseModel], prefi
             lines.append(f"{path}: required key is missing")
         else:
             msg = e["msg"].removeprefix("Value error, ").removeprefix("Assertion failed, ")
+            msg = _INSTANCE_OF.sub("a mapping of keys", msg)
             given = e.get("input")
             value = "" if kind == "value_error" or isinstance(given, dict) else f" (got {shown(given)})"
             lines.append(f"{path}: {clip(msg, 160)}{value}")
     return lines
 
 
+_INSTANCE_OF = re.compile(r"a valid dictionary or instance of \w+")
 _TYPE_TAGS = {"float", "int", "str", "bool", "list[union[float,int,str]]"}
 _TYPE_ERRORS = {"float_type", "float_parsing", "int_type", "int_parsing", "string_type", "bool_type", "bool_parsing",
                 "int_from_float", "list_type", "dict_type"}

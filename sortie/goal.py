@@ -335,8 +335,9 @@ def _finite(value: Any) -> bool:
 def _require_finite(expr: Expression, node: ast.expr, values: Values, conditions: Sequence[Mapping[str, float]]) -> None:
     if not isinstance(node, ast.expr) or _finite(_value(expr, node, values, conditions)):
         return
+    culprit = next(n for n in _post_order(node) if not _finite(_value(expr, n, values, conditions)))
     raise GoalError(f"{expr.where}: {shown(expr.source)} has a constant part that is not a finite number "
-                    f"({_why(node)} in {shown(ast.unparse(node), 40)}); rewrite it")
+                    f"({_why(culprit)} in {shown(ast.unparse(culprit), 40)}); rewrite it")
 
 
 def _why(node: ast.AST) -> str:

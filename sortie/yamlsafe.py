@@ -9,11 +9,15 @@ before it can cost time or memory:
   alias bomb is refused before anything is expanded; a config has no need to share nodes;
 * nesting deeper than :data:`MAX_DEPTH` is refused while the event stream is composed, before the
   recursive composer and constructor could exhaust Python's stack;
+* more than :data:`MAX_NODES` values are refused while composing (a config has a few hundred),
+  which bounds the time spent in Python whatever fits in the byte cap;
 * a key given twice in one mapping is refused with both lines, instead of the last one silently
   winning.
 
-PyYAML's parser and scanner are iterative state machines, so a deep or huge document reaches
-these checks without recursion.
+The scanner and parser are libyaml's when PyYAML was built with it (the wheels are), else
+PyYAML's pure-Python ones; both are iterative state machines, so a deep or huge document
+reaches these checks without recursion. Composing and constructing stay in Python, where the
+checks live.
 """
 
 from __future__ import annotations
@@ -21,14 +25,21 @@ from __future__ import annotations
 from typing import Any
 
 import yaml
+from yaml.composer import Composer
+from yaml.constructor import SafeConstructor
 from yaml.events import AliasEvent, CollectionStartEvent
 from yaml.nodes import MappingNode, Node
+from yaml.parser import Parser
+from yaml.reader import Reader
+from yaml.resolver import Resolver
+from yaml.scanner import Scanner
 
 from sortie.errors import ConfigError
 from sortie.shown import clip, shown
 
 MAX_BYTES = 1_000_000
 MAX_DEPTH = 50
+MAX_NODES = 10_000
 
 
 class _Refused(yaml.YAMLError):
@@ -40,15 +51,21 @@ class _Refused(yaml.YAMLError):
         self.problem_mark = mark
 
 
-class StrictLoader(yaml.SafeLoader):
-    """SafeLoader that refuses anchors, aliases, deep nesting and duplicate keys (see module doc)."""
+class _Checks(Composer, SafeConstructor, Resolver):
+    """The composing and constructing half of a safe loader, with the refusals of the module doc."""
 
-    def __init__(self, stream: str) -> None:
-        super().__init__(stream)
+    def _start_checks(self) -> None:
+        Composer.__init__(self)
+        SafeConstructor.__init__(self)
+        Resolver.__init__(self)
         self._depth = 0
+        self._nodes = 0
 
     def compose_node(self, parent: Node | None, index: Any) -> Node:  # type: ignore[override]
         event = self.peek_event()
+        self._nodes += 1
+        if self._nodes > MAX_NODES:
+            raise _Refused(f"holds more than {MAX_NODES:,} values; a config has a few hundred", event.start_mark)
         if isinstance(event, AliasEvent):
             raise _Refused(f"alias *{clip(event.anchor, 40)} is not allowed; write the value out "
                            f"(anchors and aliases are refused)", event.start_mark)
@@ -83,6 +100,31 @@ class StrictLoader(yaml.SafeLoader):
                                f"keep one", key_node.start_mark)
             seen[key] = line
         return super().construct_mapping(node, deep=deep)
+
+
+class _PureLoader(Reader, Scanner, Parser, _Checks):
+    """PyYAML's pure-Python reader, scanner and parser under the checks."""
+
+    def __init__(self, stream: str) -> None:
+        Reader.__init__(self, stream)
+        Scanner.__init__(self)
+        Parser.__init__(self)
+        self._start_checks()
+
+
+try:
+    from yaml._yaml import CParser
+except ImportError:  # PyYAML built without libyaml: correct, only slower
+    StrictLoader: type = _PureLoader
+else:
+    class _LibyamlLoader(_Checks, CParser):  # _Checks first: its composer replaces libyaml's
+        """libyaml's scanner and parser (fast) under the checks."""
+
+        def __init__(self, stream: str) -> None:
+            CParser.__init__(self, stream)
+            self._start_checks()
+
+    StrictLoader = _LibyamlLoader
 
 
 def load_yaml(text: str, source: str) -> Any:
