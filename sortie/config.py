@@ -32,6 +32,8 @@ NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 SAMPLING_METHODS = ("sobol", "lhs", "full-factorial", "fractional-factorial", "central-composite", "one-at-a-time")
 SIZED_METHODS = ("sobol", "lhs")
 MAX_NAME = 64
+#: Designs a campaign may spend: far beyond any solver campaign, well inside the ledger's integers.
+MAX_BUDGET = 1_000_000
 
 
 class _Section(BaseModel):
@@ -42,7 +44,7 @@ class CampaignSection(_Section):
     """Who the campaign is: a name (used for its default folder) and the one random seed."""
 
     name: str = Field(min_length=1)
-    seed: int = 0
+    seed: int = Field(default=0, ge=0, le=2**63 - 1)  # numpy's generators take non-negative seeds; SQLite holds 64 bits
     description: str = ""
 
     @field_validator("name")
@@ -358,8 +360,8 @@ class PlanSection(_Section):
 class BudgetSection(_Section):
     """What the campaign may spend: designs (the baseline counted) and/or cases; the tighter wins."""
 
-    designs: int | None = Field(default=None, gt=0)
-    cases: int | None = Field(default=None, gt=0)
+    designs: int | None = Field(default=None, gt=0, le=MAX_BUDGET)
+    cases: int | None = Field(default=None, gt=0, le=MAX_BUDGET * 100)
 
     @model_validator(mode="after")
     def _something(self) -> BudgetSection:
