@@ -122,33 +122,46 @@ def generated_cases(folder: Path) -> list[Case]:
     return cases
 
 
+# A child forked from a large process (pytest, or this module holding a 50 MB case) starts with
+# the parent's pages counted in its peak RSS, so ``sortie check`` is started by this small
+# launcher, which measures it with ``os.wait4`` and writes "peak-RSS-kB user-s system-s".
+_LAUNCHER = """
+import os, subprocess, sys
+child = subprocess.Popen(sys.argv[2:])
+_, status, usage = os.wait4(child.pid, 0)
+with open(sys.argv[1], "w") as out:
+    out.write(f"{usage.ru_maxrss} {usage.ru_utime} {usage.ru_stime}")
+sys.exit(os.waitstatus_to_exitcode(status) % 256)
+"""
+
+
 def run_check(case: Case, *, kill_after_s: float = 60.0) -> Outcome:
-    """Run ``sortie check`` on ``case`` and measure it (``os.wait4`` gives this child's own peak RSS)."""
+    """Run ``sortie check`` on ``case`` and measure its wall time, CPU time and its own peak RSS."""
     with tempfile.TemporaryDirectory() as tmp:
         return _run_in(case, Path(tmp), kill_after_s)
 
 
 def _run_in(case: Case, tmp: Path, kill_after_s: float) -> Outcome:
-    out, err = tmp / "stdout", tmp / "stderr"
+    out, err, usage_file = tmp / "stdout", tmp / "stderr", tmp / "usage"
     with open(out, "wb") as stdout, open(err, "wb") as stderr:
         start = time.perf_counter()
-        proc = subprocess.Popen([str(SORTIE), "check", case.path], cwd=case.cwd, stdout=stdout, stderr=stderr,
-                                stdin=subprocess.DEVNULL, env={**os.environ, "NO_COLOR": "1", "COLUMNS": "200"})
+        proc = subprocess.Popen([sys.executable, "-I", "-S", "-c", _LAUNCHER, str(usage_file), str(SORTIE), "check", case.path],
+                                cwd=case.cwd, stdout=stdout, stderr=stderr, stdin=subprocess.DEVNULL, start_new_session=True,
+                                env={**os.environ, "NO_COLOR": "1", "COLUMNS": "200"})
         killed = threading.Event()
 
         def _kill() -> None:
             killed.set()
-            os.kill(proc.pid, signal.SIGKILL)
+            os.killpg(proc.pid, signal.SIGKILL)
 
         timer = threading.Timer(kill_after_s, _kill)
         timer.start()
         try:
-            _, status, usage = os.wait4(proc.pid, 0)
+            returncode = proc.wait()
         finally:
             timer.cancel()
         wall = time.perf_counter() - start
-        proc.returncode = os.waitstatus_to_exitcode(status)
     text_out = out.read_text(encoding="utf-8", errors="replace")
     text_err = err.read_text(encoding="utf-8", errors="replace")
-    return Outcome(proc.returncode, text_out, text_err, wall, usage.ru_utime + usage.ru_stime, usage.ru_maxrss / 1024.0,
-                   killed.is_set())
+    rss_kb, user_s, system_s = (float(v) for v in (usage_file.read_text().split() if usage_file.exists() else (0, 0, 0)))
+    return Outcome(returncode, text_out, text_err, wall, user_s + system_s, rss_kb / 1024.0, killed.is_set())
