@@ -7,6 +7,11 @@ the figures are not inflated by contention) and prints a table and writes JSON. 
 child's own, from ``os.wait4``.
 
     python -m benchmarks.bad_configs --json benchmarks/results/bad_configs.json
+
+Measured on the shared 2-core development machine under a load average of about 10: 111 cases
+(98 files, 13 generated), every one exit code 2 with one stderr line of at most 180 characters;
+wall time median 1.33 s, slowest 1.92 s; CPU time median 0.68 s, most 0.77 s (nearly all of it
+interpreter and library start-up); peak RSS at most 57 MB.
 """
 
 from __future__ import annotations
