@@ -4,6 +4,10 @@ The function is named ``package.module:function`` or ``path/to/file.py:function`
 the config file) and is called as ``function(parameters, condition)`` with two dicts; it returns
 a mapping of quantity names to numbers. An exception in the function is a *solver* failure (the
 traceback is saved in the case folder), not a crash of the campaign.
+
+A ``file.py`` is imported as a script run from its own folder would see the world: that folder
+is put first on ``sys.path``, so the file can import a module that sits beside it. Anything the
+import raises, ``SystemExit`` included, is one config line, never a silent exit or a traceback.
 """
 
 from __future__ import annotations
@@ -11,6 +15,7 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import json
+import sys
 import time
 import traceback
 from collections.abc import Callable, Mapping
@@ -22,6 +27,7 @@ from pydantic import BaseModel, ConfigDict
 from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, check_quantities
 from sortie.config import QuantitySpec
 from sortie.errors import AdapterError
+from sortie.shown import clip, shown
 
 
 class PythonOptions(BaseModel):
@@ -95,26 +101,42 @@ def load_function(spec: str, base_dir: Path) -> Callable[..., Any]:
     """Import ``module:function`` or ``file.py:function``; one clear AdapterError if impossible."""
     target, sep, name = spec.rpartition(":")
     if not sep or not target or not name.isidentifier():
-        raise AdapterError(f"solver.function: {spec!r} must look like 'package.module:function' or 'path/to/file.py:function'")
+        raise AdapterError(f"solver.function: {shown(spec)} must look like 'package.module:function' or 'path/to/file.py:function'")
     try:
-        if target.endswith(".py"):
-            path = (base_dir / target).resolve()
-            if not path.is_file():
-                raise AdapterError(f"solver.function: file {path} does not exist")
-            module_spec = importlib.util.spec_from_file_location(f"sortie_user_{path.stem}", path)
-            assert module_spec is not None and module_spec.loader is not None
-            module = importlib.util.module_from_spec(module_spec)
-            module_spec.loader.exec_module(module)
-        else:
-            module = importlib.import_module(target)
+        module = _import_file(base_dir, target) if target.endswith(".py") else importlib.import_module(target)
     except AdapterError:
         raise
-    except Exception as exc:  # any import-time failure of user code becomes one line
-        raise AdapterError(f"solver.function: cannot import {target!r} ({type(exc).__name__}: {exc})") from None
+    except (Exception, SystemExit) as exc:  # any import-time failure of user code becomes one line
+        if isinstance(exc, SystemExit):
+            raise AdapterError(f"solver.function: cannot import {shown(target)} (it calls sys.exit({shown(exc.code, 60)}) "
+                               f"while imported); a solver module must only define {name}(parameters, condition) "
+                               f"at import") from None
+        raise AdapterError(f"solver.function: cannot import {shown(target)} ({type(exc).__name__}: {clip(str(exc))})") from None
     function = getattr(module, name, None)
     if not callable(function):
-        raise AdapterError(f"solver.function: {target!r} has no function {name!r}")
+        raise AdapterError(f"solver.function: {shown(target)} has no function {name!r}")
     return function
+
+
+def _import_file(base_dir: Path, target: str) -> Any:
+    """Import ``target`` (a .py path relative to ``base_dir``) with its own folder first on sys.path."""
+    path = (base_dir / target).resolve()
+    if not path.is_file():
+        raise AdapterError(f"solver.function: file {clip(str(path))} does not exist")
+    folder = str(path.parent)
+    if folder not in sys.path:
+        sys.path.insert(0, folder)  # kept: the function may import its neighbours lazily, at call time
+    name = f"sortie_user_{path.stem}"
+    module_spec = importlib.util.spec_from_file_location(name, path)
+    assert module_spec is not None and module_spec.loader is not None
+    module = importlib.util.module_from_spec(module_spec)
+    sys.modules[name] = module  # as for any import: dataclasses and pickle look the module up here
+    try:
+        module_spec.loader.exec_module(module)
+    except BaseException:
+        sys.modules.pop(name, None)
+        raise
+    return module
 
 
 def _plain(v: Any) -> Any:

@@ -74,9 +74,10 @@ def check(config: ConfigArg) -> None:
     Example: sortie check configs/sled-aftbody.yaml
     """
     cfg = _load_config(config)
-    from sortie.plan import initial_unit_points, sampling_notes
+    from sortie.plan import sampling_notes
+    from sortie.sizes import initial_size
 
-    n_initial = len(initial_unit_points(cfg.plan.initial, cfg.space(), cfg.campaign.seed))
+    n_initial = initial_size(cfg.plan.initial, cfg.space())  # counted, not drawn
     n_fixed = cfg.designs_before_infill()
     n_screen = n_fixed - 1 - n_initial
     n_cond = len(cfg.condition_list())

@@ -4,6 +4,12 @@ Validation happens once, here, at the edge; the rest of sortie trusts these obje
 problem becomes one line ``key.path: what is wrong; what is allowed`` and *all* problems are
 reported together, so a user fixes a config in one pass. Unknown keys are errors, with a
 "did you mean" when a known key is close.
+
+Hostile or accidental input stays cheap and short: the file is read by :mod:`sortie.yamlsafe`
+(1 MB, 50 levels, no aliases, no key given twice), every value quoted in a message goes through
+:func:`sortie.shown.shown` (about 80 characters) and every line is capped at 200, designed
+experiments are counted (:mod:`sortie.sizes`) before any is drawn, and a YAML boolean where a
+number or text is expected is refused rather than turned into 1.0 or 0.0.
 """
 
 from __future__ import annotations
@@ -11,22 +17,29 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
+import os
 import re
+import stat
 from collections.abc import Callable, Mapping
-from pathlib import Path
+from pathlib import Path, PurePosixPath, PureWindowsPath
 from typing import Any, Literal
 
 import numpy as np
-import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from sortie import sizes
 from sortie.errors import ConfigError, GoalError
-from sortie.goal import RESERVED, Constraint, Expression, Goal
+from sortie.goal import RESERVED, Constraint, Expression, Goal, check_evaluable
+from sortie.shown import clip, one_line, shown
 from sortie.space import DesignSpace, Parameter
+from sortie.yamlsafe import MAX_BYTES, load_yaml, too_big
 
 NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 SAMPLING_METHODS = ("sobol", "lhs", "full-factorial", "fractional-factorial", "central-composite", "one-at-a-time")
 SIZED_METHODS = ("sobol", "lhs")
+MAX_NAME = 64
+#: Designs a campaign may spend: far beyond any solver campaign, well inside the ledger's integers.
+MAX_BUDGET = 1_000_000
 
 
 class _Section(BaseModel):
@@ -37,14 +50,14 @@ class CampaignSection(_Section):
     """Who the campaign is: a name (used for its default folder) and the one random seed."""
 
     name: str = Field(min_length=1)
-    seed: int = 0
+    seed: int = Field(default=0, ge=0, le=2**63 - 1)  # numpy's generators take non-negative seeds; SQLite holds 64 bits
     description: str = ""
 
     @field_validator("name")
     @classmethod
     def _plain_name(cls, v: str) -> str:
         if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.-]*", v):
-            raise ValueError(f"{v!r} must be letters, digits, '_', '.' or '-' (it names a folder)")
+            raise ValueError(f"{shown(v)} must be letters, digits, '_', '.' or '-' (it names a folder)")
         return v
 
 
@@ -65,16 +78,16 @@ class ParameterSpec(_Section):
             if self.lower is not None or self.upper is not None or self.integer:
                 raise ValueError("give either choices or lower/upper (with integer), not both")
             if len(self.choices) < 2 and not self.fixed:
-                raise ValueError(f"choices ({self.choices}) must list at least two values")
+                raise ValueError(f"choices ({shown(self.choices)}) must list at least two values")
             if len(set(map(str, self.choices))) != len(self.choices):
-                raise ValueError(f"choices ({self.choices}) must not repeat a value")
+                raise ValueError(f"choices ({shown(self.choices)}) must not repeat a value")
             if self.baseline not in self.choices:
-                raise ValueError(f"baseline ({self.baseline!r}) must be one of the choices {self.choices}")
+                raise ValueError(f"baseline ({shown(self.baseline)}) must be one of the choices {shown(self.choices)}")
             return self
         if self.lower is None or self.upper is None:
             raise ValueError("needs lower and upper bounds (or a list of choices)")
         if isinstance(self.baseline, str):
-            raise ValueError(f"baseline ({self.baseline!r}) must be a number between lower and upper")
+            raise ValueError(f"baseline ({shown(self.baseline)}) must be a number between lower and upper")
         if not np.isfinite([self.lower, self.upper]).all():
             raise ValueError("lower and upper must be finite numbers")
         if self.upper <= self.lower:
@@ -93,6 +106,25 @@ class ParameterSpec(_Section):
                              unit=self.unit, fixed=self.fixed)
         return Parameter(name, "continuous", float(self.baseline), lower=self.lower, upper=self.upper,
                          unit=self.unit, fixed=self.fixed)
+
+
+def case_relative_problem(name: str) -> str | None:
+    """Why ``name`` cannot name a file inside a case folder, or None if it can.
+
+    Quantities are read from the case folder only: an absolute path or a ``..`` would let a
+    config (or a template) read any file the user can, such as ``/etc/passwd``.
+    """
+    if not name.strip():
+        return "is empty; give a file name relative to the case folder"
+    if "\0" in name:
+        return "contains a NUL character; give a file name relative to the case folder"
+    if name.startswith("~"):
+        return "starts at a home folder ('~'); allowed: a path relative to the case folder, such as result.out"
+    if PurePosixPath(name).is_absolute() or PureWindowsPath(name).drive:
+        return "is an absolute path; allowed: a path relative to the case folder, such as result.out"
+    if ".." in PurePosixPath(name.replace("\\", "/")).parts:
+        return "contains '..'; allowed: a path inside the case folder, such as output/result.out"
+    return None
 
 
 class QuantitySpec(_Section):
@@ -118,10 +150,21 @@ class QuantitySpec(_Section):
             try:
                 compiled = re.compile(self.pattern)
             except re.error as err:
-                raise ValueError(f"pattern {self.pattern!r} is not a valid regular expression ({err})") from None
+                raise ValueError(f"pattern {shown(self.pattern)} is not a valid regular expression ({clip(str(err))})") from None
+            except (RecursionError, OverflowError, MemoryError):
+                raise ValueError(f"pattern {shown(self.pattern)} is too complex to compile; simplify it") from None
             if "value" not in compiled.groupindex:
-                raise ValueError(f"pattern {self.pattern!r} needs a named group (?P<value>...) around the number")
+                raise ValueError(f"pattern {shown(self.pattern)} needs a named group (?P<value>...) around the number")
         return self
+
+    @field_validator("file")
+    @classmethod
+    def _inside_case_folder(cls, v: str | None) -> str | None:
+        if v is not None:
+            problem = case_relative_problem(v)
+            if problem:
+                raise ValueError(f"file {shown(v)} {problem}")
+        return v
 
     @property
     def rule(self) -> str | None:
@@ -323,8 +366,8 @@ class PlanSection(_Section):
 class BudgetSection(_Section):
     """What the campaign may spend: designs (the baseline counted) and/or cases; the tighter wins."""
 
-    designs: int | None = Field(default=None, gt=0)
-    cases: int | None = Field(default=None, gt=0)
+    designs: int | None = Field(default=None, gt=0, le=MAX_BUDGET)
+    cases: int | None = Field(default=None, gt=0, le=MAX_BUDGET * 100)
 
     @model_validator(mode="after")
     def _something(self) -> BudgetSection:
@@ -407,12 +450,15 @@ class CampaignConfig(_Section):
         seen: dict[str, str] = {}
         for section, keys in names.items():
             for key in keys:
+                where = f"{section}.{clip(key, 40)}"
                 if not NAME.match(key):
-                    problems.append(f"{section}.{key}: names must be letters, digits and '_' and not start with a digit (they are used in templates and goal expressions)")
+                    problems.append(f"{where}: names must be letters, digits and '_' and not start with a digit (they are used in templates and goal expressions)")
+                elif len(key) > MAX_NAME:
+                    problems.append(f"{where}: the name is {len(key)} characters long; allowed: at most {MAX_NAME}")
                 elif key in RESERVED:
-                    problems.append(f"{section}.{key}: {key!r} is reserved for goal expressions; choose another name")
+                    problems.append(f"{where}: {key!r} is reserved for goal expressions; choose another name")
                 elif key in seen:
-                    problems.append(f"{section}.{key}: the name is already used in {seen[key]}; names must be unique across parameters, conditions and quantities")
+                    problems.append(f"{where}: the name is already used in {seen[key]}; names must be unique across parameters, conditions and quantities")
                 seen.setdefault(key, section)
         if all(p.fixed for p in self.parameters.values()):
             problems.append("parameters: every parameter is fixed; at least one must be free")
@@ -427,7 +473,7 @@ class CampaignConfig(_Section):
         free = [n for n, p in self.parameters.items() if not p.fixed]
         for name in keep or []:
             if name not in free:
-                problems.append(f"plan.screening.select.keep: {name!r} is not a free parameter; allowed: {', '.join(free)}")
+                problems.append(f"plan.screening.select.keep: {shown(name)} is not a free parameter; allowed: {', '.join(free)}")
         screening = self.plan.screening
         if screening is not None and screening.method == "surrogate" and screening.designs is not None \
                 and screening.designs < n_free + 2:
@@ -435,32 +481,47 @@ class CampaignConfig(_Section):
                             f"{n_free} free parameters; allowed: at least {n_free + 2} "
                             f"(default {default_surrogate_designs(n_free)})")
         if not problems:
-            from sortie.plan import initial_count
-
-            n_initial = initial_count(self.plan.initial, self.space(), self.campaign.seed)
+            problems.extend(self._size_problems())
+        if not problems:
+            n_initial = sizes.initial_size(self.plan.initial, self.space())
             n_screen = self.designs_before_infill() - 1 - n_initial
             needed = 1 + n_screen + n_initial + self.plan.n_confirmations()
-            what = f"the {n_screen} designs of plan.screening, " if n_screen else ""
-            what = f"the baseline plus {what}the {n_initial} designs of plan.initial ({self.plan.initial.method})"
+            what = f"the {sizes.count(n_screen)} designs of plan.screening, " if n_screen else ""
+            what = f"the baseline plus {what}the {sizes.count(n_initial)} designs of plan.initial ({self.plan.initial.method})"
             if self.plan.classic is not None:
                 what += " and the confirmation design of plan.classic"
             elif self.plan.confirmation is not None:
                 what += f" and the {self.plan.confirmation.designs} design(s) of plan.confirmation"
             n_cond = len(self.condition_list())
             if self.budget.designs is not None and needed > self.budget.designs:
-                problems.append(f"budget.designs: {self.budget.designs} cannot hold {what}; allowed: at least {needed}")
+                problems.append(f"budget.designs: {self.budget.designs} cannot hold {what}; allowed: at least {sizes.count(needed)}")
             if self.budget.cases is not None and needed * n_cond > self.budget.cases:
-                problems.append(f"budget.cases: {self.budget.cases} cannot hold {what} at {n_cond} conditions each; allowed: at least {needed * n_cond}")
+                problems.append(f"budget.cases: {self.budget.cases} cannot hold {what} at {n_cond} conditions each; "
+                                f"allowed: at least {sizes.count(needed * n_cond)}")
         if problems:
             raise _Problems(problems)
         return self
 
-    def designs_before_infill(self) -> int:
-        """The baseline, the screening designs and the initial experiment (their sizes are fixed)."""
-        from sortie.plan import initial_count
+    def _size_problems(self) -> list[str]:
+        """Designed experiments too large to make (memory, Sobol' dimensions), found before allocating."""
+        space = self.space()
+        initial = self.plan.initial
+        n_initial = sizes.initial_size(initial, space)
+        found = [sizes.stage_problem("plan.initial", initial.method, n_initial, sizes.allocated_points(initial, n_initial),
+                                     space.n_dims)]
+        if self.plan.screening is not None:
+            screening = self.plan.screening
+            n_screen = screening.n_designs(space.n_dims)
+            found.append(sizes.stage_problem("plan.screening", screening.method, n_screen, n_screen, space.n_dims))
+        return [p for p in found if p]
 
+    def designs_before_infill(self) -> int:
+        """The baseline, the screening designs and the initial experiment (their sizes are fixed).
+
+        Counted, not drawn, so a huge plan is refused by the budget check before any array exists.
+        """
         n_screen = self.plan.screening.n_designs(self.space().n_dims) if self.plan.screening is not None else 0
-        return 1 + n_screen + initial_count(self.plan.initial, self.space(), self.campaign.seed)
+        return 1 + n_screen + sizes.initial_size(self.plan.initial, self.space())
 
     def target_designs(self) -> int:
         """How many designs the campaign records in all: the budget, or less if the plan says so."""
@@ -490,12 +551,17 @@ def goal_problems(goal: GoalSection, quantities: list[str], conditions: list[dic
         ramp = {q: np.arange(1.0, len(conditions) + 1) for q in quantities}
         value = objective.evaluate(ramp, ramp, conditions)
         if np.ndim(value) and np.size(value) > 1:
-            problems.append(f"goal.{goal.sense}: {objective.source!r} gives one value per condition; reduce it to one number with max(), min(), mean() or a selector such as [{next(iter(conditions[0]))}=...]")
+            problems.append(f"goal.{goal.sense}: {shown(objective.source)} gives one value per condition; reduce it to one number with max(), min(), mean() or a selector such as [{next(iter(conditions[0]))}=...]")
+        else:
+            check_evaluable(objective, quantities, conditions)
     except GoalError as err:
         problems.append(str(err))
     for i, source in enumerate(goal.subject_to):
         try:
-            Constraint.parse(source, where=f"goal.subject_to[{i}]").check(quantities, conditions)
+            constraint = Constraint.parse(source, where=f"goal.subject_to[{i}]")
+            constraint.check(quantities, conditions)
+            check_evaluable(constraint.lhs, quantities, conditions)
+            check_evaluable(constraint.rhs, quantities, conditions)
         except GoalError as err:
             problems.append(str(err))
     return problems
@@ -549,30 +615,54 @@ def load_config(path: Path, *, check_solver: SolverCheck | None = None) -> Campa
         With one line per problem.
     """
     path = Path(path)
+    text = read_config_text(path)
+    return parse_config(text, base_dir=path.resolve().parent, source=clip(str(path)), check_solver=check_solver)
+
+
+def read_config_text(path: Path) -> str:
+    """The text of a config file, or one ConfigError line saying why it cannot be had.
+
+    The file is looked at before it is opened (opening a FIFO would wait for a writer) and read
+    up to one byte past the size cap, so a huge file or a device (``/dev/zero``) costs nothing
+    before it is refused.
+    """
+    where = clip(str(path))
     try:
-        text = path.read_text(encoding="utf-8")
+        info = os.stat(path)
+        if stat.S_ISDIR(info.st_mode):
+            raise ConfigError([f"{where}: is a folder; give the campaign's YAML file"])
+        if not stat.S_ISREG(info.st_mode):
+            raise ConfigError([f"{where}: is not a regular file (a device, pipe or socket); give the campaign's YAML file"])
+        if info.st_size > MAX_BYTES:
+            raise ConfigError([too_big(where, info.st_size)])
+        with open(path, "rb") as handle:
+            data = handle.read(MAX_BYTES + 1)
     except FileNotFoundError:
-        raise ConfigError([f"{path}: no such config file"]) from None
-    except (OSError, UnicodeDecodeError) as err:
-        raise ConfigError([f"{path}: cannot be read ({err.__class__.__name__}: {err}); a UTF-8 YAML file is expected"]) from None
-    return parse_config(text, base_dir=path.resolve().parent, source=str(path), check_solver=check_solver)
+        raise ConfigError([f"{where}: no such config file"]) from None
+    except PermissionError:
+        raise ConfigError([f"{where}: cannot be read (permission denied); allow reading it or copy it"]) from None
+    except OSError as err:
+        raise ConfigError([f"{where}: cannot be read ({clip(err.strerror or str(err))})"]) from None
+    if len(data) > MAX_BYTES:
+        raise ConfigError([too_big(where, len(data))])
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as err:
+        line = data[: err.start].count(b"\n") + 1
+        raise ConfigError([f"{where} line {line}: is not UTF-8 text (byte 0x{data[err.start]:02x}); save the config as UTF-8"]) from None
 
 
 def parse_config(text: str, *, base_dir: Path, source: str = "config", check_solver: SolverCheck | None = None) -> CampaignConfig:
     """Validate config text; see :func:`load_config`."""
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as err:
-        mark = getattr(err, "problem_mark", None)
-        where = f"{source} line {mark.line + 1}, column {mark.column + 1}" if mark else source
-        problem = getattr(err, "problem", None) or str(err).splitlines()[0]
-        raise ConfigError([f"{where}: not valid YAML ({problem})"]) from None
+    raw = load_yaml(text, source)
+    if raw is None:
+        raise ConfigError([f"{source}: is empty; a config is a mapping of sections (campaign, parameters, conditions, solver, quantities, goal, plan, budget)"])
     if not isinstance(raw, dict):
         raise ConfigError([f"{source}: the top level must be a mapping of sections (campaign, parameters, conditions, solver, quantities, goal, plan, budget, slots), got {type(raw).__name__}"])
     problems: list[str] = []
     config: CampaignConfig | None = None
     try:
-        config = CampaignConfig.model_validate(raw)
+        config = CampaignConfig.model_validate(_mark_booleans(raw))
     except ValidationError as err:
         problems.extend(format_validation_errors(err, CampaignConfig))
         failed = {str(e["loc"][0]) for e in err.errors() if e["loc"]}
@@ -580,14 +670,50 @@ def parse_config(text: str, *, base_dir: Path, source: str = "config", check_sol
     if check_solver is not None and isinstance(raw.get("solver"), dict) and isinstance(raw["solver"].get("adapter"), str):
         problems.extend(check_solver(raw["solver"], base_dir, raw.get("quantities") if isinstance(raw.get("quantities"), dict) else {}))
     if problems:
-        raise ConfigError(list(dict.fromkeys(problems)))
+        raise ConfigError([one_line(p) for p in dict.fromkeys(problems)])
     assert config is not None
     return config
 
 
+class YamlBoolean:
+    """A YAML boolean where the config wants a number or text; no type accepts it, so pydantic
+    reports it at its own key path and :func:`format_validation_errors` adds the quoting hint.
+    (``choices: [yes, no]`` must never become ``[1.0, 0.0]``.)"""
+
+    def __init__(self, value: bool) -> None:
+        self.value = value
+
+    def __repr__(self) -> str:
+        return "true" if self.value else "false"
+
+
+def _bool_fields() -> frozenset[str]:
+    """Config keys whose values are booleans (``fixed: yes`` is fine)."""
+    models = [CampaignSection, ParameterSpec, QuantitySpec, GoalSection, StageSpec, InfillSpec, ClassicSpec, SelectSpec,
+              ScreeningSpec, ConfirmationSpec, PlanSection, BudgetSection, RetrySection, CampaignConfig]
+    return frozenset(name for m in models for name, f in m.model_fields.items() if f.annotation is bool)
+
+
+_BOOL_FIELDS = _bool_fields()
+
+
+def _mark_booleans(raw: Any, key: Any = None) -> Any:
+    """``raw`` with every boolean outside a boolean key wrapped in :class:`YamlBoolean`.
+
+    The solver section is left alone: adapters validate their own options.
+    """
+    if isinstance(raw, bool):
+        return raw if key in _BOOL_FIELDS else YamlBoolean(raw)
+    if isinstance(raw, dict):
+        return {k: v if (key is None and k == "solver") else _mark_booleans(v, k) for k, v in raw.items()}
+    if isinstance(raw, list):
+        return [_mark_booleans(v, key) for v in raw]
+    return raw
+
+
 def config_hash(text: str) -> str:
     """Hash of the config's meaning (parsed YAML, keys sorted), blind to comments and layout."""
-    canonical = json.dumps(yaml.safe_load(text), sort_keys=True, default=str)
+    canonical = json.dumps(load_yaml(text, "config"), sort_keys=True, default=str)
     return hashlib.sha256(canonical.encode()).hexdigest()[:16]
 
 
@@ -601,28 +727,38 @@ def format_validation_errors(err: ValidationError, model: type[BaseModel], prefi
             lines.extend(ctx["error"].lines)
             continue
         loc = [p for p in e["loc"] if not (isinstance(p, str) and p in _TYPE_TAGS)]
-        path = prefix + ".".join(str(p) for p in loc) if loc else (prefix.rstrip(".") or "config")
+        path = prefix + ".".join(clip(str(p), 40) for p in loc) if loc else (prefix.rstrip(".") or "config")
         kind = e["type"]
-        if kind in _TYPE_ERRORS and path in typed:
+        boolean = isinstance(e.get("input"), YamlBoolean)
+        if boolean:  # one line per key, not one per list item
+            while loc and isinstance(loc[-1], int):
+                loc.pop()
+            path = prefix + ".".join(clip(str(p), 40) for p in loc) if loc else (prefix.rstrip(".") or "config")
+        if (kind in _TYPE_ERRORS or boolean) and path in typed:
             continue  # one line per key when a value fits none of the types of a union
-        if kind in _TYPE_ERRORS:
+        if kind in _TYPE_ERRORS or boolean:
             typed.add(path)
-        if kind == "extra_forbidden":
+        if boolean:
+            lines.append(f"{path}: holds {e['input']!r}, a YAML boolean (unquoted yes, no, on, off, true, false); "
+                         f"quote it ('yes') to mean text, or give a number")
+        elif kind == "extra_forbidden":
             *parent, key = e["loc"]
             allowed = _allowed_keys(model, parent)
-            hint = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.6)
+            hint = difflib.get_close_matches(str(key)[:100], allowed, n=1, cutoff=0.6)
             did = f"; did you mean {hint[0]!r}?" if hint else ""
             lines.append(f"{path}: unknown key{did} (allowed here: {', '.join(allowed)})")
         elif kind == "missing":
             lines.append(f"{path}: required key is missing")
         else:
             msg = e["msg"].removeprefix("Value error, ").removeprefix("Assertion failed, ")
-            shown = e.get("input")
-            value = "" if kind == "value_error" or isinstance(shown, dict) else f" (got {shown!r})"
-            lines.append(f"{path}: {msg}{value}")
+            msg = _INSTANCE_OF.sub("a mapping of keys", msg)
+            given = e.get("input")
+            value = "" if kind == "value_error" or isinstance(given, dict) else f" (got {shown(given)})"
+            lines.append(f"{path}: {clip(msg, 160)}{value}")
     return lines
 
 
+_INSTANCE_OF = re.compile(r"a valid dictionary or instance of \w+")
 _TYPE_TAGS = {"float", "int", "str", "bool", "list[union[float,int,str]]"}
 _TYPE_ERRORS = {"float_type", "float_parsing", "int_type", "int_parsing", "string_type", "bool_type", "bool_parsing",
                 "int_from_float", "list_type", "dict_type"}

@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 
 from sortie.errors import GoalError
+from sortie.shown import shown
 
 #: Functions an expression may call. One argument reduces a vector over conditions; min/max with
 #: several arguments take the elementwise minimum/maximum.
@@ -71,7 +72,7 @@ class Expression:
         """Parse ``source``; ``where`` is the config path used in error messages."""
         tree = _parse(source, where)
         if isinstance(tree, ast.Compare):
-            raise GoalError(f"{where}: {source!r} is a comparison; an objective must be a number (use subject_to for constraints)")
+            raise GoalError(f"{where}: {shown(source)} is a comparison; an objective must be a number (use subject_to for constraints)")
         return cls(source, where, tree)
 
     def quantity_names(self) -> set[str]:
@@ -116,7 +117,7 @@ class Constraint:
     def parse(cls, source: str, *, where: str) -> Constraint:
         tree = _parse(source, where)
         if not (isinstance(tree, ast.Compare) and len(tree.ops) == 1 and type(tree.ops[0]) in _COMPARE):
-            raise GoalError(f"{where}: {source!r} must be one comparison such as 'drag <= baseline.drag' (allowed: <=, <, >=, >)")
+            raise GoalError(f"{where}: {shown(source)} must be one comparison such as 'drag <= baseline.drag' (allowed: <=, <, >=, >)")
         op = _COMPARE[type(tree.ops[0])]
         return cls(source, where, Expression(source, where, tree.left), op, Expression(source, where, tree.comparators[0]))
 
@@ -140,7 +141,7 @@ class Constraint:
 
 def _parse(source: str, where: str) -> ast.expr:
     if not isinstance(source, str) or not source.strip():
-        raise GoalError(f"{where}: an expression is required, got {source!r}")
+        raise GoalError(f"{where}: an expression is required, got {shown(source)}")
     if len(source) > MAX_LENGTH:
         raise GoalError(f"{where}: the expression is {len(source)} characters long; at most {MAX_LENGTH} are allowed")
     rewritten = _SELECTOR.sub(r"\1==", source)
@@ -148,8 +149,10 @@ def _parse(source: str, where: str) -> ast.expr:
         return ast.parse(rewritten.strip(), mode="eval").body
     except (RecursionError, MemoryError):
         raise GoalError(f"{where}: the expression is nested too deeply; split it or simplify it") from None
+    except ValueError as err:  # e.g. an integer literal past Python's digit limit
+        raise GoalError(f"{where}: {shown(source)} cannot be read ({shown(str(err), 60)[1:-1]})") from None
     except SyntaxError as err:
-        raise GoalError(f"{where}: {source!r} is not a valid expression ({err.msg}); allowed: numbers, quantities, baseline.<quantity>, quantity[condition=value], + - * / **, {', '.join(FUNCTIONS)}") from None
+        raise GoalError(f"{where}: {shown(source)} is not a valid expression ({err.msg}); allowed: numbers, quantities, baseline.<quantity>, quantity[condition=value], + - * / **, {', '.join(FUNCTIONS)}") from None
 
 
 def _is_selector_name(root: ast.expr, name: ast.Name) -> bool:
@@ -184,11 +187,14 @@ class _Evaluator:
         self.expr, self.values, self.baseline, self.conditions = expr, values, baseline, conditions
 
     def fail(self, what: str) -> GoalError:
-        return GoalError(f"{self.expr.where}: {self.expr.source!r} {what}")
+        return GoalError(f"{self.expr.where}: {shown(self.expr.source)} {what}")
 
     def visit(self, node: ast.expr) -> Any:
         if isinstance(node, ast.Constant) and isinstance(node.value, int | float) and not isinstance(node.value, bool):
-            return float(node.value)
+            try:
+                return float(node.value)
+            except OverflowError:
+                raise self.fail(f"has a number too large for a float ({len(str(node.value))} digits)") from None
         if isinstance(node, ast.Name):
             return self.quantity(node.id, self.values)
         if isinstance(node, ast.Attribute):
@@ -260,6 +266,89 @@ class _Evaluator:
         if len(args) != 1:
             raise self.fail(f"calls {name}() with {len(args)} arguments; it takes one")
         return FUNCTIONS[name](args[0])
+
+
+#: Scales of the random quantity values :func:`check_evaluable` tries (each with both signs); a
+#: goal that is NaN or infinite at every one of them is refused.
+CHECK_SCALES = (1e-3, 1.0, 1e3, 1e6)
+
+
+def check_evaluable(expr: Expression, quantities: Sequence[str], conditions: Sequence[Mapping[str, float]],
+                    rng: np.random.Generator | None = None) -> None:
+    """Refuse, at ``check``, an expression that can never give a finite number.
+
+    Two rules. A part that uses no quantity (``0``, ``10 ** 10 ** 10``, ``sqrt(-1)``) must be
+    finite, and no division may be by a constant zero: these are wrong whatever the solver
+    returns. Then the whole expression is evaluated on draws of finite quantity values (uniform
+    in [0.5, 2] times each of :data:`CHECK_SCALES`, positive and negative, the baseline drawn
+    separately); if every result is NaN or infinite the expression is refused, naming the first part that went wrong
+    (``max(lift) / (max(lift) - max(lift))``). An expression finite for some values passes:
+    its value at run time is the solver's business.
+    """
+    for node in ast.walk(expr.tree):
+        if not _uses_quantity(node):
+            _require_finite(expr, node, {}, conditions)
+        if isinstance(node, ast.BinOp) and isinstance(node.op, ast.Div) and not _uses_quantity(node.right) \
+                and _value(expr, node.right, {}, conditions) == 0:
+            raise GoalError(f"{expr.where}: {shown(expr.source)} divides by zero in {shown(ast.unparse(node), 40)}; "
+                            f"the divisor must not be a constant zero")
+    rng = rng if rng is not None else np.random.default_rng(0)
+    scales = [sign * scale for scale in CHECK_SCALES for sign in (1.0, -1.0)]
+    pairs = [tuple({q: s * rng.uniform(0.5, 2.0, len(conditions)) for q in quantities} for _ in range(2)) for s in scales]
+    if any(_finite(expr.evaluate(values, base, conditions)) for values, base in pairs):
+        return
+    values, base = pairs[0]
+    culprit = next((n for n in _post_order(expr.tree) if not _finite(_value(expr, n, values, conditions, base))), expr.tree)
+    raise GoalError(f"{expr.where}: {shown(expr.source)} is never a finite number ({_why(culprit)} in "
+                    f"{shown(ast.unparse(culprit), 40)} for every value tried); rewrite it")
+
+
+def _uses_quantity(node: ast.AST) -> bool:
+    return any(isinstance(n, ast.Name | ast.Attribute) and not _is_function_name(n, node) for n in ast.walk(node))
+
+
+def _is_function_name(name: ast.AST, root: ast.AST) -> bool:
+    return any(isinstance(n, ast.Call) and n.func is name for n in ast.walk(root))
+
+
+def _post_order(node: ast.expr) -> list[ast.expr]:
+    """Sub-expressions children first, so the first non-finite one is where things went wrong."""
+    if isinstance(node, ast.Call):
+        children: list[ast.expr] = list(node.args)
+    elif isinstance(node, ast.Subscript):
+        children = [node.value]
+    else:
+        children = [c for c in ast.iter_child_nodes(node) if isinstance(c, ast.expr)]
+    return [n for child in children for n in _post_order(child)] + [node]
+
+
+def _value(expr: Expression, node: ast.expr, values: Values, conditions: Sequence[Mapping[str, float]],
+           baseline: Values | None = None) -> Any:
+    with np.errstate(all="ignore"):
+        return _Evaluator(expr, values, baseline if baseline is not None else values, conditions).visit(node)
+
+
+def _finite(value: Any) -> bool:
+    return bool(np.all(np.isfinite(np.asarray(value, dtype=float))))
+
+
+def _require_finite(expr: Expression, node: ast.expr, values: Values, conditions: Sequence[Mapping[str, float]]) -> None:
+    if not isinstance(node, ast.expr) or _finite(_value(expr, node, values, conditions)):
+        return
+    culprit = next(n for n in _post_order(node) if not _finite(_value(expr, n, values, conditions)))
+    raise GoalError(f"{expr.where}: {shown(expr.source)} has a constant part that is not a finite number "
+                    f"({_why(culprit)} in {shown(ast.unparse(culprit), 40)}); rewrite it")
+
+
+def _why(node: ast.AST) -> str:
+    """What most likely made ``node`` NaN or infinite."""
+    if isinstance(node, ast.BinOp) and isinstance(node.op, ast.Div):
+        return "a division by zero"
+    if isinstance(node, ast.BinOp) and isinstance(node.op, ast.Pow | ast.Mult | ast.Add | ast.Sub):
+        return "an overflow"
+    if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id == "sqrt":
+        return "the square root of a negative number"
+    return "a value out of range"
 
 
 @dataclass(frozen=True)

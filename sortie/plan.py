@@ -13,14 +13,11 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from sortie import sampling
+from sortie.sizes import DEFAULT_FACTORIAL_LEVELS, DEFAULT_SWEEP_LEVELS
 from sortie.space import DesignSpace
 
 if TYPE_CHECKING:
     from sortie.config import PlanSection, ScreeningSpec, StageSpec
-
-DEFAULT_FACTORIAL_LEVELS = 3
-DEFAULT_SWEEP_LEVELS = 5
-
 
 @dataclass(frozen=True)
 class ProposedDesign:
@@ -53,17 +50,6 @@ def initial_unit_points(stage: StageSpec, space: DesignSpace, seed: int) -> np.n
         sweep = sampling.one_at_a_time(space.baseline_unit(), stage.levels or DEFAULT_SWEEP_LEVELS)
         return sweep[1:]  # the baseline itself is always run as design 1
     raise ValueError(f"unknown sampling method {stage.method!r}")
-
-
-def initial_count(stage: StageSpec, space: DesignSpace, seed: int) -> int:
-    """How many designs the initial experiment has, without drawing a Sobol' or Latin hypercube sample.
-
-    Those two methods give exactly ``designs`` points; counting them this way spares readers of
-    a campaign (``sortie status``) the import of scipy.stats.
-    """
-    if stage.method in ("sobol", "lhs") and isinstance(stage.designs, int) and stage.designs > 0:
-        return stage.designs
-    return len(initial_unit_points(stage, space, seed))
 
 
 def sampling_notes(plan: PlanSection, n_free: int) -> list[str]:

@@ -4,6 +4,11 @@ Four rules, one per common output shape: a regular expression with a named ``val
 last match wins, since solvers print converging values), ``key = value`` lines, a column of a CSV
 file (last row), and a dotted path into a JSON file. A missing file, a missing match or text that
 is not a number is reported with the file named, so the user knows where to look.
+
+Only files inside the case folder are read: the config refuses absolute paths and ``..``, and
+here the path is resolved (symlinks followed) and refused if it lands outside the folder or is
+not a regular file, so a solver or template cannot make sortie read ``/etc/passwd`` or block on
+``/dev/zero``.
 """
 
 from __future__ import annotations
@@ -11,20 +16,45 @@ from __future__ import annotations
 import csv
 import json
 import re
+import stat
 from collections.abc import Mapping
 from pathlib import Path
 
-from sortie.config import QuantitySpec
+from sortie.config import QuantitySpec, case_relative_problem
+from sortie.shown import shown
 
 
 class QuantityNotFound(Exception):
     """A rule found nothing usable; the message names the file and the rule."""
 
 
+def case_file(workdir: Path, name: str) -> Path:
+    """``workdir / name`` if it is a regular file inside ``workdir`` (symlinks resolved); a missing
+    file is returned as is, so the caller reports it as not written."""
+    problem = case_relative_problem(name)
+    if problem:
+        raise QuantityNotFound(f"output file {shown(name)} {problem}")
+    path = workdir / name
+    if not path.exists() and not path.is_symlink():
+        return path
+    folder = workdir.resolve()
+    target = path.resolve()
+    if not target.is_relative_to(folder):
+        raise QuantityNotFound(f"output file {path} leads outside the case folder (to {shown(str(target))}); "
+                               f"only files inside {folder} are read")
+    try:
+        mode = target.stat().st_mode
+    except OSError:
+        return path
+    if not stat.S_ISREG(mode):
+        raise QuantityNotFound(f"output file {path} cannot be read (not a regular file but a folder, device or pipe)")
+    return target
+
+
 def read_quantity(workdir: Path, name: str, spec: QuantitySpec) -> str:
     """Return the raw text of quantity ``name`` from ``workdir`` (converted to float by the caller)."""
     assert spec.file is not None
-    path = Path(workdir) / spec.file
+    path = case_file(Path(workdir), spec.file)
     try:
         text = path.read_text(encoding="utf-8", errors="replace")
     except FileNotFoundError:

@@ -86,7 +86,7 @@ def test_config_that_is_missing_or_a_folder_is_one_line(monkeypatch, capsys, tmp
     assert_one_line(err, "missing.yaml", "no such config file")
     code, _, err = run_main(monkeypatch, capsys, "run", str(tmp_path))
     assert code == 2
-    assert_one_line(err, str(tmp_path), "cannot be read")
+    assert_one_line(err, str(tmp_path), "is a folder")
 
 
 def _unprivileged() -> list[str] | None:
@@ -113,7 +113,7 @@ def test_config_without_read_permission_is_one_line(tmp_path: Path) -> None:
     if "Permission denied" in result.stderr and "error:" not in result.stderr:
         pytest.skip(f"the unprivileged user cannot start this interpreter ({result.stderr.strip()[:120]})")
     assert result.returncode == 2, result.stderr
-    assert_one_line(result.stderr, "campaign.yaml: cannot be read", "Permission denied")
+    assert_one_line(result.stderr, "campaign.yaml: cannot be read", "permission denied")
 
 
 @pytest.mark.parametrize(("args", "code", "fragment"), [

@@ -163,7 +163,7 @@ BAD_CONFIGS = [
     BadConfig("unknown-sampling-method", "plan.initial.method", ("'sobel'", "'sobol'"),
               _set("plan", initial={"method": "sobel", "designs": 16})),
     BadConfig("zero-slots", "slots", ("greater than 0", "got 0"), lambda c: c.update(slots=0)),
-    BadConfig("yaml-tab-indent", f"{{file}} line {_SEED_LINE}", ("not valid YAML", "'\\t'"), text=_TAB_TEXT),
+    BadConfig("yaml-tab-indent", f"{{file}} line {_SEED_LINE}", ("not valid YAML", "tab"), text=_TAB_TEXT),
     BadConfig("yaml-over-indent", f"{{file}} line {_SEED_LINE}", ("not valid YAML",), text=_INDENT_TEXT),
     BadConfig("top-level-is-a-list", "{file}", ("top level must be a mapping", "got list"),
               text="- campaign\n- parameters\n"),
@@ -384,3 +384,159 @@ def test_surrogate_screening_defaults_to_a_power_of_two_of_at_least_three_points
 def test_every_shipped_config_is_valid(path: Path) -> None:
     config = parse_config(path.read_text(encoding="utf-8"), base_dir=path.parent, source=str(path), check_solver=check_solver)
     assert config.target_designs() <= config.budget.max_designs(len(config.condition_list()))
+
+
+# --- issue 12: config edges -------------------------------------------------------------------
+
+
+def _refused(config: dict[str, Any] | str, tmp_path: Path) -> list[str]:
+    text = config if isinstance(config, str) else yaml.safe_dump(config, sort_keys=False)
+    with pytest.raises(ConfigError) as info:
+        parse_config(text, base_dir=tmp_path, source=CONFIG_NAME)
+    return info.value.problems
+
+
+def test_a_parameter_given_twice_is_refused_not_overwritten(tmp_path: Path) -> None:
+    line = _line_of(DEMO_TEXT, "  ramp_angle:")
+    doubled = DEMO_TEXT.replace("  boattail_length:", "  ramp_angle: {lower: 1.0, upper: 2.0, baseline: 1.5}\n  boattail_length:", 1)
+    problems = _refused(doubled, tmp_path)  # before: the second ramp_angle silently won
+    assert problems == [f"{CONFIG_NAME} line {line + 1}, column 3: key 'ramp_angle' is given twice "
+                        f"(lines {line} and {line + 1}); keep one"]
+
+
+@pytest.mark.parametrize(("spec", "key"), [
+    ({"choices": [True, False], "baseline": "yes"}, "parameters.wing.choices"),
+    ({"choices": ["yes", "no"], "baseline": True}, "parameters.wing.baseline"),
+    ({"lower": False, "upper": 2.0, "baseline": 1.0}, "parameters.wing.lower"),
+])
+def test_yaml_booleans_are_refused_with_a_hint_to_quote_them(tmp_path: Path, spec: dict[str, Any], key: str) -> None:
+    config = _demo()
+    config["parameters"]["wing"] = spec
+    problems = _refused(config, tmp_path)  # before: choices [yes, no] became [1.0, 0.0]
+    assert len(problems) == 1
+    assert problems[0].startswith(f"{key}: holds ")
+    assert "a YAML boolean" in problems[0] and "quote it" in problems[0]
+
+
+def test_quoted_yes_and_no_stay_text_and_boolean_keys_stay_booleans(tmp_path: Path) -> None:
+    text = DEMO_TEXT.replace("  fin_count:          {choices: [2, 3, 4], baseline: 3}",
+                             "  fin_count:          {choices: [2, 3, 4], baseline: 3}\n"
+                             "  wing: {choices: ['yes', 'no'], baseline: 'no'}\n"
+                             "  livery: {lower: 0.0, upper: 1.0, baseline: 0.5, fixed: yes}")
+    config = parse_config(text, base_dir=tmp_path)
+    assert config.parameters["wing"].choices == ["yes", "no"]
+    assert config.parameters["livery"].fixed is True
+
+
+def test_a_boolean_in_a_number_field_is_refused(tmp_path: Path) -> None:
+    config = _demo()
+    config["slots"] = True
+    config["conditions"] = {"mach": [True, False]}
+    problems = _refused(config, tmp_path)
+    assert sorted(p.split(":", 1)[0] for p in problems) == ["conditions.mach", "slots"]
+
+
+@pytest.mark.parametrize(("initial", "fragment"), [
+    ({"method": "sobol", "designs": 1_000_000_000}, "plan.initial: sobol makes 1,000,000,000 designs of 8 parameters"),
+    ({"method": "full-factorial", "levels": 11}, "plan.initial: full-factorial makes 58,461,513 designs"),
+    ({"method": "lhs", "designs": 5_000_000}, "plan.initial: lhs makes 5,000,000 designs"),
+])
+def test_huge_experiments_are_refused_before_anything_is_allocated(tmp_path: Path, initial: dict[str, Any], fragment: str) -> None:
+    import tracemalloc
+
+    config = _demo()
+    config["plan"] = {"initial": initial}
+    config["budget"] = {"designs": 1_000_000}  # the largest budget allowed
+    tracemalloc.start()
+    try:
+        problems = _refused(config, tmp_path)  # before: numpy tried to allocate up to 64 GiB
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert len(problems) == 1 and problems[0].startswith(fragment), problems
+    assert "allowed: at most 10,000,000 values" in problems[0]
+    assert peak < 20 * 2**20
+
+
+def test_a_huge_experiment_within_memory_is_refused_by_the_budget_by_count(tmp_path: Path) -> None:
+    config = _demo()
+    config["plan"] = {"initial": {"method": "fractional-factorial"}}
+    problems = _refused(config, tmp_path)
+    assert problems == ["budget.designs: 33 cannot hold the baseline plus the 128 designs of plan.initial "
+                        "(fractional-factorial); allowed: at least 129"]
+
+
+@pytest.mark.parametrize(("goal", "fragment"), [
+    ("max(lift) / 0", "divides by zero"),
+    ("max(lift) ** 10 ** 10 ** 10", "an overflow"),
+    ("sqrt(-1)", "square root of a negative number"),
+])
+def test_goals_that_cannot_be_finite_fail_check(tmp_path: Path, goal: str, fragment: str) -> None:
+    config = _demo()
+    config["goal"]["minimize"] = goal
+    problems = _refused(config, tmp_path)
+    assert len(problems) == 1 and problems[0].startswith("goal.minimize: ") and fragment in problems[0]
+
+
+def test_a_constraint_that_cannot_be_finite_fails_check(tmp_path: Path) -> None:
+    config = _demo()
+    config["goal"]["subject_to"] = ["drag / 0 <= baseline.drag"]
+    problems = _refused(config, tmp_path)
+    assert len(problems) == 1 and problems[0].startswith("goal.subject_to[0]: ") and "divides by zero" in problems[0]
+
+
+@pytest.mark.parametrize("mutate", [
+    _set("campaign", name="sled/" * 600_000),
+    _param("fin_count", choices=list(range(50_000)), baseline=-1),
+    _set("goal", minimize="max(" + "lift" * 400 + ")"),
+    _quantity("lift", pattern="(" * 100_000),
+    lambda c: c["parameters"].__setitem__("x" * 500_000, {"lower": 0, "upper": 1, "baseline": 0.5}),
+    lambda c: c["campaign"].__setitem__("y" * 500_000, 1),
+], ids=["long-name", "long-choices", "long-goal", "long-pattern", "long-parameter-name", "long-unknown-key"])
+def test_no_problem_line_runs_past_two_hundred_characters(tmp_path: Path, mutate: Callable[[dict[str, Any]], Any]) -> None:
+    config = _demo()
+    mutate(config)
+    problems = _refused(config, tmp_path)
+    assert problems and all(len(line) <= 200 for line in problems), [len(line) for line in problems]
+
+
+@pytest.mark.parametrize(("make", "fragment"), [
+    (lambda p: None, ": no such config file"),
+    (lambda p: p.mkdir(), ": is a folder"),
+    (lambda p: p.write_bytes(b"campaign:\n  name: sled-\xe9\n"), " line 2: is not UTF-8 text (byte 0xe9)"),
+    (lambda p: p.write_text(""), ": is empty"),
+    (lambda p: p.write_text("# only a comment\n"), ": is empty"),
+    (lambda p: p.write_text("a: '" + "x" * 2_000_000 + "'\n"), ": the file is 2,000,006 bytes; a config may be at most 1,000,000"),
+    (lambda p: os.mkfifo(p), ": is not a regular file"),
+    (lambda p: p.write_text("- a\n- b\n"), ": the top level must be a mapping"),
+], ids=["missing", "folder", "not-utf8", "empty", "comment-only", "too-big", "fifo", "list"])
+def test_every_unreadable_config_is_one_line(tmp_path: Path, make: Callable[[Path], Any], fragment: str) -> None:
+    from sortie.config import load_config
+
+    path = tmp_path / "campaign.yaml"
+    make(path)
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    assert info.value.problems == [info.value.problems[0]]
+    assert info.value.problems[0].startswith(f"{path}{fragment}"), info.value.problems
+
+
+def test_a_config_without_read_permission_is_one_line(tmp_path: Path) -> None:
+    from sortie.config import load_config
+
+    if os.geteuid() == 0:
+        pytest.skip("root reads every file whatever its mode")
+    path = tmp_path / "campaign.yaml"
+    path.write_text(DEMO_TEXT)
+    path.chmod(0)
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    assert info.value.problems == [f"{path}: cannot be read (permission denied); allow reading it or copy it"]
+
+
+def test_config_hash_uses_the_strict_loader() -> None:
+    from sortie.config import config_hash
+
+    assert config_hash("a: 1\nb: [1, 2]\n") == config_hash("b: [1, 2]   # layout and comments do not count\na: 1\n")
+    with pytest.raises(ConfigError):
+        config_hash("a: &x 1\nb: *x\n")

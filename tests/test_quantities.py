@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import pytest
@@ -152,3 +153,66 @@ def test_spec_with_a_bad_rule_is_refused(raw, fragment):
 ])
 def test_spec_names_its_rule(raw, rule):
     assert QuantitySpec.model_validate(raw).rule == rule
+
+
+# --- issue 12: quantity files stay inside the case folder -------------------------------------
+
+
+@pytest.mark.parametrize(("name", "fragment"), [
+    ("/etc/passwd", "is an absolute path"),
+    ("../../etc/passwd", "contains '..'"),
+    ("post/../../secret.txt", "contains '..'"),
+    ("~/.ssh/id_rsa", "home folder"),
+    ("", "is empty"),
+])
+def test_config_refuses_a_quantity_file_outside_the_case_folder(name, fragment):
+    with pytest.raises(ValidationError) as info:  # before the fix these were accepted and read
+        QuantitySpec(file=name, key="root")
+    assert fragment in str(info.value)
+
+
+@pytest.mark.parametrize("name", ["result.out", "post/forces.dat", "./result.out"])
+def test_config_accepts_a_quantity_file_inside_the_case_folder(name):
+    assert QuantitySpec(file=name, key="cd").file == name
+
+
+def test_a_symlink_out_of_the_case_folder_is_not_followed(tmp_path):
+    outside = tmp_path / "outside.txt"
+    outside.write_text("cd = 0.99\n")
+    case = tmp_path / "case"
+    case.mkdir()
+    (case / "result.out").symlink_to(outside)
+    with pytest.raises(QuantityNotFound) as info:
+        read_quantity(case, "cd", QuantitySpec(file="result.out", key="cd"))
+    assert "outside the case folder" in str(info.value)
+
+
+def test_a_symlinked_folder_out_of_the_case_folder_is_not_followed(tmp_path):
+    (tmp_path / "elsewhere").mkdir()
+    (tmp_path / "elsewhere" / "forces.dat").write_text("cd = 0.99\n")
+    case = tmp_path / "case"
+    case.mkdir()
+    (case / "post").symlink_to(tmp_path / "elsewhere")
+    with pytest.raises(QuantityNotFound, match="outside the case folder"):
+        read_quantity(case, "cd", QuantitySpec(file="post/forces.dat", key="cd"))
+
+
+def test_a_symlink_inside_the_case_folder_is_read(tmp_path):
+    (tmp_path / "run1.out").write_text("cd = 0.42\n")
+    (tmp_path / "result.out").symlink_to(tmp_path / "run1.out")
+    assert read_quantity(tmp_path, "cd", QuantitySpec(file="result.out", key="cd")) == "0.42"
+
+
+def test_a_device_or_fifo_in_the_case_folder_is_refused_without_blocking(tmp_path):
+    os.mkfifo(tmp_path / "result.out")  # opening it for reading would wait for a writer forever
+    with pytest.raises(QuantityNotFound, match="not a regular file"):
+        read_quantity(tmp_path, "cd", QuantitySpec(file="result.out", key="cd"))
+    (tmp_path / "zero.out").symlink_to("/dev/zero")  # outside, and endless
+    with pytest.raises(QuantityNotFound, match="outside the case folder"):
+        read_quantity(tmp_path, "cd", QuantitySpec(file="zero.out", key="cd"))
+
+
+def test_an_absolute_file_is_refused_at_read_time_too(tmp_path):
+    spec = QuantitySpec.model_construct(file="/etc/passwd", key="root", pattern=None, column=None, json_path=None)
+    with pytest.raises(QuantityNotFound, match="is an absolute path"):
+        read_quantity(tmp_path, "root", spec)

@@ -223,3 +223,59 @@ def test_unknown_adapter_name_gives_did_you_mean():
     assert len(problems) == 1
     assert "did you mean 'python'?" in problems[0]
     assert "installed: command, python" in problems[0]
+
+
+# --- issue 12: imports that exit, and files that import their neighbours ----------------------
+
+
+@pytest.mark.parametrize(("body", "fragment"), [
+    ("import sys\nsys.exit(0)\n", "calls sys.exit(0) while imported"),
+    ("import sys\nsys.exit('usage: model.py IN OUT')\n", "calls sys.exit('usage: model.py IN OUT') while imported"),
+    ("raise SystemExit(3)\n", "calls sys.exit(3) while imported"),
+])
+def test_a_module_that_exits_on_import_is_one_line_not_a_silent_exit(tmp_path, body, fragment):
+    (tmp_path / "exits.py").write_text(body + "def forces(values, condition):\n    return {}\n")
+    with pytest.raises(AdapterError) as info:  # before the fix SystemExit escaped: `sortie check` ended with 0
+        load_function("exits.py:forces", tmp_path)
+    assert str(info.value).startswith("solver.function: cannot import 'exits.py' (")
+    assert fragment in str(info.value)
+    assert "\n" not in str(info.value)
+
+
+def test_a_module_that_exits_on_import_is_a_check_problem(tmp_path):
+    (tmp_path / "exits.py").write_text("import sys\nsys.exit(0)\n")
+    problems = registry.check_solver({"adapter": "python", "function": "exits.py:forces"}, tmp_path, {"fz": {}})
+    assert len(problems) == 1
+    assert problems[0].startswith("solver.function: cannot import 'exits.py'")
+
+
+def test_an_import_error_message_is_clipped_to_one_short_line(tmp_path):
+    (tmp_path / "loud.py").write_text("raise RuntimeError('x' * 1_000_000)\n")
+    with pytest.raises(AdapterError) as info:
+        load_function("loud.py:forces", tmp_path)
+    assert len(str(info.value)) < 200
+    assert "RuntimeError" in str(info.value)
+
+
+def test_a_file_solver_imports_a_module_beside_it_like_a_script(tmp_path, monkeypatch):
+    folder = tmp_path / "sled_model_with_helper"
+    folder.mkdir()
+    (folder / "sled_geometry_zz.py").write_text("def area(angle):\n    return 2.0 * angle\n")
+    (folder / "model.py").write_text(
+        "import sled_geometry_zz\n\n"
+        "def forces(values, condition):\n"
+        "    return {'fz': sled_geometry_zz.area(values['ramp_angle']), 'cd': 0.5}\n")
+    monkeypatch.setattr(sys, "path", list(sys.path))  # the adapter adds the folder for good; undo it here
+    function = load_function("sled_model_with_helper/model.py:forces", tmp_path)
+    assert function({"ramp_angle": 3.0}, {"mach": 0.9}) == {"fz": 6.0, "cd": 0.5}
+    assert sys.path[0] == str(folder)
+
+
+def test_a_neighbour_imported_lazily_at_call_time_is_found_too(tmp_path, monkeypatch):
+    (tmp_path / "sled_table_zz.py").write_text("VALUE = 0.25\n")
+    (tmp_path / "lazy.py").write_text(
+        "def forces(values, condition):\n"
+        "    import sled_table_zz\n"
+        "    return {'fz': sled_table_zz.VALUE, 'cd': 0.0}\n")
+    monkeypatch.setattr(sys, "path", list(sys.path))
+    assert load_function("lazy.py:forces", tmp_path)({}, {})["fz"] == 0.25
