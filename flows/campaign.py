@@ -37,7 +37,7 @@ from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, Sol
 from sortie.adapters.registry import build_adapter  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
 from sortie.errors import CampaignError, SortieError  # noqa: E402
-from sortie.goal import Goal  # noqa: E402
+from sortie.goal import Composition, Goal, read_outputs  # noqa: E402
 from sortie.infill import MIN_POINTS, History, InfillSettings, fit_models, optimize_surface, propose_infill  # noqa: E402
 from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
 from sortie.plan import first_designs, initial_designs  # noqa: E402
@@ -114,11 +114,13 @@ class _Conductor:
     kernels: dict[str, Any] | None = None
     left_running: int = 0
     space: DesignSpace = field(init=False)
+    composite: bool = field(init=False)
 
     def __post_init__(self) -> None:
         self.goal = self.config.goal.build()
         self.conditions = self.config.condition_list()
         self.space = self.config.space()
+        self.composite = self.config.surrogate_mode()[0] == "composite"
 
     # -- plan ------------------------------------------------------------------------------
     def plan(self) -> None:
@@ -357,6 +359,7 @@ class _Conductor:
         finished = [d for d in designs if d.status in ("done", "failed")]
         pending = [d for d in designs if d.status == "pending"]
         sources = [c.source for c in self.goal.constraints]
+        outputs, composition = self._outputs(designs, finished) if self.composite else (None, None)
         return History(
             X=self.space.to_unit([d.values for d in finished]),
             objective=np.array([sign * d.objective if d.objective is not None else np.nan for d in finished]),
@@ -364,7 +367,28 @@ class _Conductor:
                              dtype=float).reshape(len(finished), len(sources)),
             succeeded=np.array([d.status == "done" for d in finished], dtype=bool),
             pending=self.space.to_unit([d.values for d in pending]),
+            outputs=outputs,
+            composition=composition,
         )
+
+    def _outputs(self, designs: list[Any], finished: list[Any]) -> tuple[np.ndarray | None, Composition | None]:
+        """Each quantity the goal reads at each condition it reads it, per finished design (NaN where the case
+        failed), and the goal as a function of them; (None, None) while a goal that needs the baseline lacks it."""
+        by_design: dict[int, dict[int, CaseRow]] = {}
+        for case in self.ledger.cases():
+            by_design.setdefault(case.design_id, {})[case.condition_index] = case
+        baseline = self._vectors(list(by_design.get(designs[0].id, {}).values())) if designs else None
+        if baseline is None and self.goal.uses_baseline():
+            return None, None
+        names = tuple(self.config.quantities)
+        composition = Composition(self.goal, names, tuple(self.conditions), baseline,
+                                  read_outputs(self.goal, names, self.conditions))
+        rows = []
+        for d in finished:
+            cases = by_design.get(d.id, {})
+            rows.append([float(cases[c].quantities[q]) if c in cases and cases[c].state == "done" and cases[c].quantities
+                         else np.nan for q, c in composition.outputs])
+        return np.array(rows, dtype=float).reshape(len(finished), len(composition.outputs)), composition
 
     def _target_name(self, target: str) -> str:
         if target.startswith("constraint "):

@@ -51,6 +51,7 @@ def check(config: Annotated[Path, typer.Argument(help="Campaign config (YAML).")
     typer.echo(f"{config}: ok - {cfg.space().n_dims} free parameters, {n_cond} conditions, "
                f"baseline + {screen}{n_initial} initial designs = {n_fixed * n_cond} cases, plan {cfg.target_designs()} designs, "
                f"{cfg.slots} slots, adapter {cfg.solver['adapter']}")
+    typer.echo("surrogates: {} ({})".format(*cfg.surrogate_mode()))
 
 
 @app.command()

@@ -228,7 +228,12 @@ class InfillProposal:
                     f"P(success) {self.probability_success:.3g}")
         where = "near the best design: " if self.local else ""
         return (f"{where}expected improvement {self.expected_improvement:.4g} x P(feasible) {self.probability_feasible:.3g} "
-                f"x P(success) {self.probability_success:.3g} over best {self.incumbent:.6g} ({self.chosen.get('objective', '?')})")
+                f"x P(success) {self.probability_success:.3g} over best {self.incumbent:.6g} ({self._models()})")
+
+    def _models(self) -> str:
+        if "objective" in self.chosen or not self.chosen:
+            return self.chosen.get("objective", "?")
+        return f"composite of {len(self.chosen)} {'/'.join(sorted(set(self.chosen.values())))} models"
 
 
 @dataclass

@@ -532,15 +532,17 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         return kernel.clone_with_theta(theta)
 
     def _factorise(
-        self, kernel: Kernel, X: np.ndarray, y_norm: np.ndarray, *, alpha: float
+        self, kernel: Kernel, X: np.ndarray, y_norm: np.ndarray, *, alpha: float, offsets: np.ndarray | None = None
     ) -> tuple[GaussianProcessRegressor, float]:
         """Condition on the data with the kernel as given, retrying with 100x more jitter whenever Cholesky fails.
 
         A failed Cholesky means near-duplicate points or a kernel close to singular; a larger fixed
-        jitter is the remedy scikit-learn itself suggests (gp.md section 1).
+        jitter is the remedy scikit-learn itself suggests (gp.md section 1). ``offsets`` (one per row)
+        are added to the diagonal besides the jitter: minus the white noise for rows taken as exact.
         """
         while True:
-            model = GaussianProcessRegressor(kernel, alpha=alpha, optimizer=None, normalize_y=False)
+            diag = alpha if offsets is None else alpha + offsets
+            model = GaussianProcessRegressor(kernel, alpha=diag, optimizer=None, normalize_y=False)
             try:
                 with warnings.catch_warnings(record=True) as caught:
                     warnings.simplefilter("always")
@@ -697,9 +699,9 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         """
         check_is_fitted(self, "model_")
         X_pending = _check_X(X_pending, n_dims=self.X_.shape[1], name="X_pending")
-        return self.condition(X_pending, self.predict(X_pending))
+        return self.condition(X_pending, self.predict(X_pending), exact=True)
 
-    def condition(self, X_new: np.ndarray, y_new: np.ndarray) -> GaussianProcessSurrogate:
+    def condition(self, X_new: np.ndarray, y_new: np.ndarray, *, exact: bool = False) -> GaussianProcessSurrogate:
         """A new model that also treats ``y_new`` at ``X_new`` as observed, with the kernel held fixed.
 
         The rows are not solver results: Kriging-believer fantasies (:meth:`believer`) or values
@@ -711,6 +713,9 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         ----------
         X_new : array-like of shape (n_new, n_dims)
         y_new : array-like of shape (n_new,)
+        exact : bool, default=False
+            Take the new values as noiseless (the fitted white noise is left off their diagonal), as
+            the Kriging believer does with its fantasies; imputed failures keep the noise.
 
         Returns
         -------
@@ -729,7 +734,15 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         new.y_mean_, new.y_std_ = self.y_mean_, self.y_std_
         new.X_ = np.vstack([self.X_, X_new])
         new.y_ = np.concatenate([self.y_, y_new])
-        new.model_, new.alpha_ = new._factorise(self.kernel_, new.X_, (new.y_ - new.y_mean_) / new.y_std_, alpha=self.alpha_)
+        # Exact rows (believed values) carry no white noise: the believer takes the mean as a noiseless
+        # observation, so the std there vanishes even when the fit found some noise (gp.md section 2).
+        noise = float(self.kernel_.k2.noise_level) if exact and self.noise and isinstance(self.kernel_, Sum) \
+            and isinstance(self.kernel_.k2, WhiteKernel) else 0.0
+        previous = getattr(self, "offsets_", None)
+        new.offsets_ = np.concatenate([np.zeros(self.X_.shape[0]) if previous is None else previous,
+                                       np.full(X_new.shape[0], -noise)])
+        new.model_, new.alpha_ = new._factorise(self.kernel_, new.X_, (new.y_ - new.y_mean_) / new.y_std_, alpha=self.alpha_,
+                                                offsets=new.offsets_)
         new.kernel_ = new.model_.kernel_
         new.n_pending_ = self.n_pending_ + X_new.shape[0]
         return new
