@@ -506,9 +506,15 @@ class _Conductor:
                 self.ledger.finish_design(design_id, status="done", objective=score.objective,
                                           constraints=score.constraints, feasible=score.feasible)
             if design.stage == "confirmation":
-                check = stages.confirmation_check(self.ledger.design(design_id), self.goal)
+                check = stages.confirmation_check(self.ledger.design(design_id), self.goal, self._actual_outputs(cases))
                 self.ledger.add_analysis("confirmation", check)
                 self.ledger.event("confirmation", f"design {design_id} confirmation {check['verdict']}", {"design": design_id})
+
+    def _actual_outputs(self, cases: list[CaseRow]) -> dict[str, float | None]:
+        """What the solver returned for each quantity at each condition, labelled as composite predictions are."""
+        labels = Composition(self.goal, tuple(self.config.quantities), tuple(self.conditions), None, ()).label
+        return {labels(q, c.condition_index): (c.quantities or {}).get(q) if c.state == "done" else None
+                for c in cases for q in self.config.quantities}
 
     def _vectors(self, cases: list[CaseRow]) -> dict[str, Any] | None:
         if not cases or any(c.state != "done" for c in cases):

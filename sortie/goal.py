@@ -335,7 +335,11 @@ class Composition:
     @property
     def labels(self) -> list[str]:
         """``quantity[condition]`` for each output, as the report and the ledger show it."""
-        return [f"{q}[{_condition_label(self.conditions[c])}]" for q, c in self.outputs]
+        return [self.label(q, c) for q, c in self.outputs]
+
+    def label(self, quantity: str, condition: int) -> str:
+        """``lift[mach=0.6]``: a quantity at the condition of that index."""
+        return f"{quantity}[{_condition_label(self.conditions[condition])}]"
 
     def values(self, Y: np.ndarray) -> dict[str, np.ndarray]:
         """Quantities of shape (n_samples, n_conditions) from output samples of shape (n_samples, n_outputs)."""

@@ -40,6 +40,7 @@ References
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -66,6 +67,10 @@ from sortie.goal import Composition
 from sortie.surrogate import GaussianProcessSurrogate, ModelScore, Surrogate, choose_surrogate
 
 MIN_POINTS = 3
+# Composite mode ranks a candidate set of more than _SCREEN_ROWS points on the first _SCREEN_SAMPLES
+# base samples only (see _CompositeAcquisition.log_score); a finite-difference stencil is d + 1 rows.
+_SCREEN_ROWS = 64
+_SCREEN_SAMPLES = 32
 # Plain EI below this fraction of the objective's scale means the local box around the best
 # design is exhausted, and the step is taken globally (see propose_infill).
 _EXHAUSTED = 1e-6
@@ -333,9 +338,9 @@ class _CompositeModels:
     def predict(self, X: np.ndarray, models: Sequence[Surrogate] | None = None) -> tuple[np.ndarray, np.ndarray]:
         """Means and stds of every output at ``X``, each of shape (n_points, n_outputs)."""
         pairs = [m.predict(X, return_std=True) for m in (models if models is not None else self.outputs)]
-        mean = np.column_stack([p[0] for p in pairs])
-        std = np.column_stack([np.nan_to_num(p[1], nan=0.0) for p in pairs])
-        return mean, std
+        std = np.column_stack([p[1] for p in pairs])
+        std[np.isnan(std)] = 0.0  # a model without a std (RBF) is taken at its mean
+        return np.column_stack([p[0] for p in pairs]), std
 
 
 def fit_composite(history: History, settings: InfillSettings, seed: int, warm: Mapping[str, Any] | None = None, *,
@@ -415,9 +420,10 @@ class _CompositeAcquisition:
             mu_p, _ = models.predict(history.pending)
             self.incumbent = _believed_best(self.incumbent, comp.objective(mu_p), comp.margins(mu_p))
 
-    def _samples(self, mean: np.ndarray, std: np.ndarray, factor: float = 1.0) -> np.ndarray:
+    def _samples(self, mean: np.ndarray, std: np.ndarray, factor: float = 1.0, Z: np.ndarray | None = None) -> np.ndarray:
         """Posterior draws of the outputs, shape (n_points * n_samples, n_outputs)."""
-        return (mean[:, None, :] + factor * std[:, None, :] * self.Z[None, :, :]).reshape(-1, mean.shape[1])
+        Z = self.Z if Z is None else Z
+        return (mean[:, None, :] + factor * std[:, None, :] * Z[None, :, :]).reshape(-1, mean.shape[1])
 
     def mean_objective(self, X: np.ndarray) -> np.ndarray:
         """Posterior mean of the composed objective (sample average), with the models before any belief."""
@@ -426,17 +432,19 @@ class _CompositeAcquisition:
 
     def log_score(self, X: np.ndarray, std_factor: float) -> np.ndarray:
         total = self.models.success.log_predict_proba(X, std_factor=std_factor)
-        n_s = self.Z.shape[0]
+        # A large candidate set is ranked on the first 32 base samples (a balanced Sobol' prefix); the
+        # few points the search polishes, and the one it returns, are scored on all of them.
+        Z = self.Z[:_SCREEN_SAMPLES] if X.shape[0] > _SCREEN_ROWS else self.Z
         out = np.empty(X.shape[0])
         for start in range(0, X.shape[0], 128):  # (rows x samples x outputs) stays a few MB
             rows = slice(start, start + 128)
             mean, std = self.models.predict(X[rows], self.outputs)
             part = np.zeros(mean.shape[0])
             if self.margin_tau.size:
-                m = self.comp.margins(self._samples(mean, std)).reshape(mean.shape[0], n_s, -1)
+                m = self.comp.margins(self._samples(mean, std, Z=Z)).reshape(mean.shape[0], len(Z), -1)
                 part += mc_log_probability_of_feasibility(m, self.margin_tau)
             if self.incumbent is not None:
-                g = self.comp.objective(self._samples(mean, std, std_factor)).reshape(mean.shape[0], n_s)
+                g = self.comp.objective(self._samples(mean, std, std_factor, Z)).reshape(mean.shape[0], len(Z))
                 part += mc_log_expected_improvement(g, self.incumbent, self.tau)
             out[rows] = part
         return total + out
@@ -739,18 +747,37 @@ def _optimize_composite(history: History, settings: InfillSettings, *, seed: int
             return None
         Z = normal_base_samples(len(comp.outputs), 64, settings.mc_seed)
         d = history.n_dims
+        step = math.sqrt(np.finfo(float).eps)
+        memo: dict[bytes, tuple[float, np.ndarray, np.ndarray, np.ndarray]] = {}
+
+        def evaluate(x: np.ndarray) -> tuple[float, np.ndarray, np.ndarray, np.ndarray]:
+            """Objective, margins' upper values and both forward-difference gradients, from one prediction
+            on x and its d shifted copies (SLSQP asks for values and gradients at the same points)."""
+            key = x.tobytes()
+            if key not in memo:
+                signs = np.where(x + step <= 1.0, 1.0, -1.0)
+                stencil = np.vstack([x, x + np.eye(d) * step * signs[:, None]])
+                mean, std = models.predict(stencil)
+                objective = comp.objective(mean)
+                if z == 0.0:
+                    margins = comp.margins(mean)
+                else:
+                    m = comp.margins((mean[:, None, :] + std[:, None, :] * Z[None]).reshape(-1, mean.shape[1]))
+                    m = m.reshape(len(stencil), len(Z), -1)
+                    margins = m.mean(axis=1) + z * m.std(axis=1)
+                memo.clear()
+                memo[key] = (float(objective[0]), margins[0], (objective[1:] - objective[0]) / (step * signs),
+                             (margins[1:] - margins[0]) / (step * signs)[:, None])
+            return memo[key]
 
         def f(x: np.ndarray) -> float:
-            return float(comp.objective(models.predict(x[None, :])[0])[0])
+            return evaluate(np.clip(x, 0.0, 1.0))[0]
 
         def upper(x: np.ndarray) -> np.ndarray:
-            mean, std = models.predict(x[None, :])
-            if z == 0.0:
-                return comp.margins(mean)[0]
-            m = comp.margins(mean + std * Z)
-            return m.mean(axis=0) + z * m.std(axis=0)
+            return evaluate(np.clip(x, 0.0, 1.0))[1]
 
-        constraints = [{"type": "ineq", "fun": (lambda x: -upper(x))}] if comp.goal.constraints else []
+        constraints = [{"type": "ineq", "fun": (lambda x: -upper(x)),
+                        "jac": (lambda x: -evaluate(np.clip(x, 0.0, 1.0))[3].T)}] if comp.goal.constraints else []
         starts = qmc.Sobol(d, rng=seed).random(n_starts)
         feasible = _feasible_rows(history)
         if feasible.any():
@@ -758,7 +785,8 @@ def _optimize_composite(history: History, settings: InfillSettings, *, seed: int
             starts = np.vstack([history.X[feasible][order], starts])
         best: tuple[float, float, np.ndarray] | None = None
         for x0 in starts:
-            res = minimize(f, x0, method="SLSQP", bounds=[(0.0, 1.0)] * d, constraints=constraints, options={"maxiter": 200})
+            res = minimize(f, x0, jac=lambda x: evaluate(np.clip(x, 0.0, 1.0))[2], method="SLSQP", bounds=[(0.0, 1.0)] * d,
+                           constraints=constraints, options={"maxiter": 200})
             x = np.clip(res.x, 0.0, 1.0)
             if avoid is not None and len(avoid) and np.min(np.linalg.norm(avoid - x, axis=1)) < settings.min_distance:
                 continue
