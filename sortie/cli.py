@@ -168,7 +168,7 @@ def _print_result(directory: Path, cfg) -> None:
                        f"the solver gave {best['objective']:.6g}")
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" for c in choice["scores"] if c["loo_rmse"] is not None)
-        typer.echo(f"surrogate for {target}: {choice['chosen']} (leave-one-out RMSE: {scored})")
+        typer.echo(f"surrogate for {target}: {choice['chosen']}, {choice['rule']} (leave-one-out RMSE: {scored})")
     for line in _stage_lines(s):
         typer.echo(line)
     typer.echo(f"results: ledger {ledger_path(directory)}, case folders {directory / 'cases'}")
@@ -241,7 +241,12 @@ def status(
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" if c["loo_rmse"] is not None else f"{c['name']} skipped"
                            for c in choice["scores"])
-        typer.echo(f"surrogate for {target}: {choice['chosen']} on {choice['n_points']} designs (leave-one-out RMSE: {scored})")
+        typer.echo(f"surrogate for {target}: {choice['chosen']} on {choice['n_points']} designs, {choice['rule']} "
+                   f"(leave-one-out RMSE: {scored})")
+    for r in s["outputs_checked"]:
+        typer.echo(f"{r['output']}: predicted against actual on {r['designs']} proposed designs, RMS error {r['rms_error']:.3g}, "
+                   f"{r['within_2_std']:.0%} within ±2σ; estimated noise σ {_fmt(r['noise_std'])}, "
+                   f"spread of repeated designs {_fmt(r['repeat_spread']) if r['repeat_spread'] is not None else 'no repeats'}")
 
 
 @app.command()

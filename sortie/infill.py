@@ -411,7 +411,7 @@ class _CompositeAcquisition:
         # Smoothing widths: a millionth of the objective's spread, a thousandth of each margin's.
         self.margin_tau = np.maximum(1e-3 * np.nan_to_num(np.std(margins_seen, axis=0), nan=1.0), 1e-12) \
             if margins_seen.shape[1] else np.zeros(0)
-        best = _incumbent(history, _feasible_rows(history), self.mean_objective, settings.incumbent)
+        best = _incumbent(history, _feasible_rows(history), self.mean_objective, _incumbent_rule(settings, models.outputs))
         self.best_row = best[1] if best is not None else None
         self.incumbent = best[0] if best is not None else None
         spread = float(np.ptp(history.objective[ok])) if ok.any() else 0.0
@@ -513,6 +513,21 @@ def _incumbent(history: History, feasible: np.ndarray, objective: Surrogate | Ca
         values = np.asarray(predict(history.X[rows]))
     best = int(np.argmin(values))
     return float(values[best]), int(rows[best])
+
+
+# Fitted white-noise variance, as a share of the output's variance, above which the solver counts as
+# noisy (a noise std above about 3 % of the output's spread): EI then beats the best *predicted*
+# feasible design instead of the best observed one, which may be a lucky draw (Picheny et al. 2013).
+_NOISY = 1e-3
+
+
+def _incumbent_rule(settings: InfillSettings, models: Sequence[Surrogate]) -> str:
+    """``settings.incumbent``, or ``best-predicted`` when a GP found significant noise in its output.
+
+    Composite mode only: direct mode keeps the configured rule (``plan.infill.incumbent``), as before.
+    """
+    noisy = any(isinstance(m, GaussianProcessSurrogate) and m.noise_std_ > math.sqrt(_NOISY) * m.y_std_ for m in models)
+    return "best-predicted" if noisy else settings.incumbent
 
 
 def _believed_best(incumbent: float | None, objective: np.ndarray, margins: np.ndarray) -> float | None:

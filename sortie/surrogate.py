@@ -567,6 +567,18 @@ class GaussianProcessSurrogate(RegressorMixin, BaseEstimator):
         return self.kernel_.k1 if self.noise else self.kernel_
 
     @property
+    def noise_std_(self) -> float:
+        """The fitted white-noise standard deviation in the units of y (0 without a noise term).
+
+        What the model believes a repeated run at the same design would scatter by; its lower bound
+        (1e-10 of the variance on the normalised scale) keeps the kernel matrix well conditioned.
+        """
+        check_is_fitted(self, "kernel_")
+        if not (self.noise and isinstance(self.kernel_, Sum) and isinstance(self.kernel_.k2, WhiteKernel)):
+            return 0.0
+        return math.sqrt(float(self.kernel_.k2.noise_level)) * self.y_std_
+
+    @property
     def length_scales_(self) -> np.ndarray:
         """Fitted ARD length-scales, shape (n_dims,), in unit-cube coordinates.
 
@@ -1139,6 +1151,7 @@ class ModelScore:
     loo_r2: float
     n_points: int
     note: str = ""
+    noise_std: float | None = None
 
 
 def choose_surrogate(
@@ -1216,7 +1229,7 @@ def choose_surrogate(
         if fitted is not None:
             fitted[name] = model
         note = f"{_plural(len(model.warnings_), 'fit warning')}; see warnings_" if model.warnings_ else ""
-        scores.append(ModelScore(name, rmse, r2, n, note))
+        scores.append(ModelScore(name, rmse, r2, n, note, getattr(model, "noise_std_", None)))
         if rmse < best_rmse:
             best, best_rmse = model, rmse
     if best is None:
