@@ -146,14 +146,32 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=10)
     parser.add_argument("--jobs", type=int, default=1, help="runs side by side (the machine is shared: keep it small)")
     parser.add_argument("--json", type=Path, default=Path("benchmarks/results/composite.json"))
+    parser.add_argument("--only-seeds", type=int, nargs="+", default=None, help="run these seeds instead of 0..seeds-1")
+    parser.add_argument("--runs", type=Path, default=None,
+                        help="also append each finished run to this JSON-lines file, so runs split over several "
+                             "processes can be summarised together with --merge")
+    parser.add_argument("--merge", type=Path, nargs="+", default=None, help="summarise these JSON-lines files instead of running")
     args = parser.parse_args()
-    tasks = [(p, m, s) for p in args.problems for m in args.modes for s in range(args.seeds)]
-    results: dict[str, dict[str, list[Any]]] = {p: {m: [None] * args.seeds for m in args.modes} for p in args.problems}
-    with ProcessPoolExecutor(args.jobs) as pool:
-        for name, mode, seed, result, seconds in pool.map(_one, tasks):
-            results[name][mode][seed] = result
-            print(f"{name} {mode} seed {seed}: best {result['curve'][-1]:.4g} in {seconds:.1f} s", flush=True)
-    summary = {"problems": {name: summarise(COMPOSITE_PROBLEMS[name](), results[name]) for name in args.problems}}
+    seeds = args.only_seeds if args.only_seeds is not None else list(range(args.seeds))
+    results: dict[str, dict[str, dict[int, Any]]] = {p: {m: {} for m in args.modes} for p in args.problems}
+    if args.merge:
+        for path in args.merge:
+            for line in path.read_text().splitlines():
+                row = json.loads(line)
+                if row["problem"] in results and row["mode"] in results[row["problem"]]:
+                    results[row["problem"]][row["mode"]][row["seed"]] = row["result"]
+    else:
+        tasks = [(p, m, s) for p in args.problems for m in args.modes for s in seeds]
+        with ProcessPoolExecutor(args.jobs) as pool:
+            for name, mode, seed, result, seconds in pool.map(_one, tasks):
+                results[name][mode][seed] = result
+                print(f"{name} {mode} seed {seed}: best {result['curve'][-1]:.4g} in {seconds:.1f} s", flush=True)
+                if args.runs is not None:
+                    with args.runs.open("a") as f:
+                        f.write(json.dumps({"problem": name, "mode": mode, "seed": seed, "result": result}) + "\n")
+    ordered = {p: {m: [runs[k] for k in sorted(runs)] for m, runs in modes.items() if runs} for p, modes in results.items()}
+    summary = {"problems": {name: summarise(COMPOSITE_PROBLEMS[name](), ordered[name]) for name in args.problems
+                            if ordered[name]}}
     for name, s in summary["problems"].items():
         print_table(name, s)
     args.json.parent.mkdir(parents=True, exist_ok=True)
