@@ -64,7 +64,7 @@ from sortie.acquisition import (
     probability_of_feasibility,
 )
 from sortie.goal import Composition
-from sortie.surrogate import GaussianProcessSurrogate, ModelScore, Surrogate, choose_surrogate
+from sortie.models import GaussianProcessSurrogate, ModelScore, Surrogate, choose_surrogate
 
 MIN_POINTS = 3
 # Composite mode ranks a candidate set of more than _SCREEN_ROWS points on the first _SCREEN_SAMPLES
