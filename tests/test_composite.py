@@ -206,3 +206,25 @@ def test_a_design_that_failed_at_one_condition_still_trains_the_other_conditions
     assert models is not None
     assert len(models.outputs[0].X_) == 6 and len(models.outputs[1].X_) == 5
     assert propose_infill(history, FAST, seed=0) is not None
+
+
+def test_config_mode_is_composite_for_the_demo_direct_when_asked_and_an_uncomposable_goal_is_refused(tmp_path) -> None:
+    # common practice, no source: the rule of plan.infill.model and its one-line refusal
+    import yaml
+
+    from sortie.config import parse_config
+    from sortie.errors import ConfigError
+    from tests.conftest import ROOT
+
+    raw = yaml.safe_load((ROOT / "configs" / "sled-aftbody.yaml").read_text())
+    cfg = parse_config(yaml.safe_dump(raw), base_dir=ROOT / "configs")
+    mode, why = cfg.surrogate_mode()
+    assert mode == "composite" and "lift at 4 conditions" in why
+    raw["plan"]["infill"] = {"model": "direct"}
+    assert parse_config(yaml.safe_dump(raw), base_dir=ROOT / "configs").surrogate_mode() == ("direct", "set by plan.infill.model")
+    raw["plan"]["infill"] = {"model": "composite"}
+    raw["goal"] = {"minimize": "2.0"}
+    with pytest.raises(ConfigError) as err:
+        parse_config(yaml.safe_dump(raw), base_dir=ROOT / "configs")
+    lines = [line for line in str(err.value).splitlines() if "plan.infill.model" in line]
+    assert len(lines) == 1 and "reads at least one quantity" in lines[0]
