@@ -42,7 +42,7 @@ from sortie.adapters.base import CaseOutcome, CaseSpec, JobHandle, JobState, Sol
 from sortie.adapters.registry import build_adapter  # noqa: E402
 from sortie.config import CampaignConfig  # noqa: E402
 from sortie.errors import CampaignError, SortieError  # noqa: E402
-from sortie.goal import Goal  # noqa: E402
+from sortie.goal import Composition, Goal, read_outputs  # noqa: E402
 from sortie.infill import MIN_POINTS, History, InfillSettings, fit_models, optimize_surface, propose_infill  # noqa: E402
 from sortie.ledger import CaseRow, Ledger, ledger_path  # noqa: E402
 from sortie.plan import first_designs, initial_designs  # noqa: E402
@@ -155,12 +155,14 @@ class _Conductor:
     space: DesignSpace = field(init=False)
     target_designs: int = field(init=False)
     _baseline: tuple[int, dict[str, Any] | None] | None = None  # (design id, its vectors once all done)
+    composite: bool = field(init=False)
 
     def __post_init__(self) -> None:
         self.goal = self.config.goal.build()
         self.conditions = self.config.condition_list()
         self.space = self.config.space()
         self.target_designs = self.config.target_designs()  # draws the plan's points: once, not per event
+        self.composite = self.config.surrogate_mode()[0] == "composite"
 
     # -- plan ------------------------------------------------------------------------------
     def plan(self) -> None:
@@ -402,6 +404,7 @@ class _Conductor:
         finished = [d for d in designs if d.status in ("done", "failed")]
         pending = [d for d in designs if d.status == "pending"]
         sources = [c.source for c in self.goal.constraints]
+        outputs, composition = self._outputs(designs, finished) if self.composite else (None, None)
         return History(
             X=self.space.to_unit([d.values for d in finished]),
             objective=np.array([sign * d.objective if d.objective is not None else np.nan for d in finished]),
@@ -409,7 +412,28 @@ class _Conductor:
                              dtype=float).reshape(len(finished), len(sources)),
             succeeded=np.array([d.status == "done" for d in finished], dtype=bool),
             pending=self.space.to_unit([d.values for d in pending]),
+            outputs=outputs,
+            composition=composition,
         )
+
+    def _outputs(self, designs: list[Any], finished: list[Any]) -> tuple[np.ndarray | None, Composition | None]:
+        """Each quantity the goal reads at each condition it reads it, per finished design (NaN where the case
+        failed), and the goal as a function of them; (None, None) while a goal that needs the baseline lacks it."""
+        by_design: dict[int, dict[int, CaseRow]] = {}
+        for case in self.ledger.cases():
+            by_design.setdefault(case.design_id, {})[case.condition_index] = case
+        baseline = self._vectors(list(by_design.get(designs[0].id, {}).values())) if designs else None
+        if baseline is None and self.goal.uses_baseline():
+            return None, None
+        names = tuple(self.config.quantities)
+        composition = Composition(self.goal, names, tuple(self.conditions), baseline,
+                                  read_outputs(self.goal, names, self.conditions))
+        rows = []
+        for d in finished:
+            cases = by_design.get(d.id, {})
+            rows.append([float(cases[c].quantities[q]) if c in cases and cases[c].state == "done" and cases[c].quantities
+                         else np.nan for q, c in composition.outputs])
+        return np.array(rows, dtype=float).reshape(len(finished), len(composition.outputs)), composition
 
     def _target_name(self, target: str) -> str:
         if target.startswith("constraint "):
@@ -531,7 +555,7 @@ class _Conductor:
                 self.ledger.finish_design(design_id, status="done", objective=score.objective,
                                           constraints=score.constraints, feasible=score.feasible)
             if design.stage == "confirmation":
-                check = stages.confirmation_check(self.ledger.design(design_id), self.goal)
+                check = stages.confirmation_check(self.ledger.design(design_id), self.goal, self._actual_outputs(cases))
                 self.ledger.add_analysis("confirmation", check)
                 self.ledger.event("confirmation", f"design {design_id} confirmation {check['verdict']}", {"design": design_id})
             if needs_baseline and self._baseline is not None and design_id == self._baseline[0]:
@@ -560,6 +584,12 @@ class _Conductor:
                                 "compares designs with the baseline, so the campaign stops; fix the solver set-up and run again")
             return _BASELINE_FAILED
         return vectors
+
+    def _actual_outputs(self, cases: list[CaseRow]) -> dict[str, float | None]:
+        """What the solver returned for each quantity at each condition, labelled as composite predictions are."""
+        labels = Composition(self.goal, tuple(self.config.quantities), tuple(self.conditions), None, ()).label
+        return {labels(q, c.condition_index): (c.quantities or {}).get(q) if c.state == "done" else None
+                for c in cases for q in self.config.quantities}
 
     def _vectors(self, cases: list[CaseRow]) -> dict[str, Any] | None:
         if not cases or any(c.state != "done" for c in cases):

@@ -37,9 +37,9 @@ from sortie.config import CampaignConfig
 from sortie.errors import SortieError
 from sortie.infill import MIN_POINTS, History, InfillSettings, fit_models
 from sortie.ledger import CaseRow, DesignRow, Ledger, ledger_path
+from sortie.models import ModelScore, Surrogate
 from sortie.space import DesignSpace
 from sortie.status import best_design, design_table
-from sortie.surrogate import ModelScore, Surrogate
 
 __all__ = ["ApiError", "CampaignSurrogate", "CampaignView", "Snapshot", "case_table", "open_campaign"]
 
@@ -102,7 +102,7 @@ class CampaignSurrogate:
         ``"objective"``, a constraint's source text (its margin: positive = violated), or a
         quantity at one condition, written ``"lift[mach=1.1]"``.
     model : Surrogate
-        The fitted model on the unit cube over the free parameters (see :mod:`sortie.surrogate`).
+        The fitted model on the unit cube over the free parameters (see :mod:`sortie.models`).
     scores : tuple of ModelScore
         Leave-one-out score of every candidate tried, the chosen one included.
     space : DesignSpace

@@ -87,6 +87,7 @@ def check(config: ConfigArg) -> None:
     typer.echo(f"{config}: ok - {cfg.space().n_dims} free parameters, {n_cond} conditions, "
                f"baseline + {screen}{n_initial} initial designs = {n_fixed * n_cond} cases, plan {cfg.target_designs()} designs, "
                f"{cfg.slots} slots, adapter {cfg.solver['adapter']}")
+    typer.echo("surrogates: {} ({})".format(*cfg.surrogate_mode()))
 
 
 @app.command()
@@ -211,7 +212,7 @@ def _print_result(directory: Path, cfg) -> None:
                        f"the solver gave {best['objective']:.6g}")
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" for c in choice["scores"] if c["loo_rmse"] is not None)
-        typer.echo(f"surrogate for {target}: {choice['chosen']} (leave-one-out RMSE: {scored})")
+        typer.echo(f"surrogate for {target}: {choice['chosen']}, {choice['rule']} (leave-one-out RMSE: {scored})")
     for line in _stage_lines(s):
         typer.echo(line)
     typer.echo(f"results: ledger {ledger_path(directory)}, case folders {directory / 'cases'}")
@@ -254,7 +255,7 @@ def status(
     from sortie.ledger import Ledger, ledger_path
     from sortie.progress import LedgerWatcher, describe
     from sortie.runstate import describe_state
-    from sortie.status import summary
+    from sortie.status import ledger_output_checks, summary
 
     cfg, _ = campaign.load(directory)
     if watch:
@@ -270,6 +271,7 @@ def status(
             # stops the watching only; the campaign runs on elsewhere
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
         s = summary(ledger, cfg)
+        s["outputs_checked"] = ledger_output_checks(ledger, cfg)
     if as_json:
         typer.echo(json.dumps(s, indent=2))
         return
@@ -290,7 +292,12 @@ def status(
     for target, choice in s["models"].items():
         scored = ", ".join(f"{c['name']} {c['loo_rmse']:.3g}" if c["loo_rmse"] is not None else f"{c['name']} skipped"
                            for c in choice["scores"])
-        typer.echo(f"surrogate for {target}: {choice['chosen']} on {choice['n_points']} designs (leave-one-out RMSE: {scored})")
+        typer.echo(f"surrogate for {target}: {choice['chosen']} on {choice['n_points']} designs, {choice['rule']} "
+                   f"(leave-one-out RMSE: {scored})")
+    for r in s["outputs_checked"]:
+        typer.echo(f"{r['output']}: predicted against actual on {r['designs']} proposed designs, RMS error {r['rms_error']:.3g}, "
+                   f"{r['within_2_std']:.0%} within ±2σ; estimated noise σ {_fmt(r['noise_std'])}, "
+                   f"spread of repeated designs {_fmt(r['repeat_spread']) if r['repeat_spread'] is not None else 'no repeats'}")
 
 
 @app.command()

@@ -29,7 +29,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from sortie import sizes
 from sortie.errors import ConfigError, GoalError
-from sortie.goal import RESERVED, Constraint, Expression, Goal, check_evaluable
+from sortie.goal import RESERVED, Constraint, Expression, Goal, check_evaluable, composition_problem, model_rule
 from sortie.shown import clip, one_line, shown
 from sortie.space import DesignSpace, Parameter
 from sortie.yamlsafe import MAX_BYTES, load_yaml, too_big
@@ -235,6 +235,10 @@ class InfillSpec(_Section):
     min_distance: float = Field(default=0.001, gt=0, lt=0.5)
     stop_below: float | None = Field(default=None, gt=0, lt=1)
     incumbent: Literal["best-observed", "best-predicted"] = "best-observed"
+    # composite: one model per quantity per condition, the goal composed from their samples; direct: one
+    # model of the objective and of each margin. None: composite when the goal reads a quantity at more
+    # than one condition or uses abs/max/min (CampaignConfig.surrogate_mode).
+    model: Literal["composite", "direct"] | None = None
 
 
 class ClassicSpec(_Section):
@@ -463,6 +467,8 @@ class CampaignConfig(_Section):
         if all(p.fixed for p in self.parameters.values()):
             problems.append("parameters: every parameter is fixed; at least one must be free")
         problems.extend(goal_problems(self.goal, list(self.quantities), self.condition_list()))
+        if not problems and self.plan.infill is not None and self.plan.infill.model == "composite":
+            problems.extend(filter(None, [composition_problem(self.goal.build(), list(self.quantities), self.condition_list())]))
         initial = self.plan.initial
         n_free = sum(not p.fixed for p in self.parameters.values())
         if initial.method == "fractional-factorial" and n_free < 3:
@@ -533,6 +539,16 @@ class CampaignConfig(_Section):
         if self.plan.infill.designs is None:
             return budget
         return min(budget, fixed + self.plan.infill.designs + confirm)
+
+    def surrogate_mode(self) -> tuple[Literal["composite", "direct"], str]:
+        """Whether infill and the fitted surfaces model each quantity at each condition or the goal, and why."""
+        chosen = self.plan.infill.model if self.plan.infill is not None else None
+        if chosen is not None:
+            return chosen, "set by plan.infill.model"
+        goal, quantities, conditions = self.goal.build(), list(self.quantities), self.condition_list()
+        mode, why = model_rule(goal, quantities, conditions)
+        problem = composition_problem(goal, quantities, conditions) if mode == "composite" else None
+        return ("direct", problem) if problem else (mode, why)  # type: ignore[return-value]
 
     def condition_list(self) -> list[dict[str, float]]:
         """The conditions as one mapping per operating point, in config order."""

@@ -96,9 +96,22 @@ class Expression:
 
     def evaluate(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> Scalar | Vector:
         """Evaluate with ``values[q]`` of shape (n_conditions,) for each quantity ``q``."""
+        return self._walk(_Evaluator, values, baseline, conditions)
+
+    def evaluate_batch(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> Vector:
+        """Evaluate over many samples at once: ``values[q]`` of shape (n_samples, n_conditions).
+
+        Returns shape (n_samples, 1) for an expression reduced to one number per sample, (n_samples,
+        n_conditions) for one that is not (a constraint side such as ``drag``), or (1, k) for one
+        that reads only constants and baseline values. Row ``i`` equals :meth:`evaluate` on sample ``i``.
+        """
+        return np.atleast_2d(np.asarray(self._walk(_BatchEvaluator, values, baseline, conditions), dtype=float))
+
+    def _walk(self, evaluator: type[_Evaluator], values: Values, baseline: Values | None,
+              conditions: Sequence[Mapping[str, float]]) -> Any:
         with np.errstate(all="ignore"):
             try:
-                return _Evaluator(self, values, baseline, conditions).visit(self.tree)
+                return evaluator(self, values, baseline, conditions).visit(self.tree)
             except RecursionError:
                 raise GoalError(f"{self.where}: the expression is nested too deeply; split it or simplify it") from None
 
@@ -137,6 +150,14 @@ class Constraint:
         rhs = self.rhs.evaluate(values, baseline, conditions)
         diff = np.asarray(lhs - rhs if self.op in ("<=", "<") else rhs - lhs, dtype=float)
         return float(np.max(diff))
+
+    def margin_batch(self, values: Values, baseline: Values | None, conditions: Sequence[Mapping[str, float]]) -> np.ndarray:
+        """:meth:`margin` for many samples: ``values[q]`` of shape (n_samples, n_conditions); shape (n_samples,)."""
+        lhs = self.lhs.evaluate_batch(values, baseline, conditions)
+        rhs = self.rhs.evaluate_batch(values, baseline, conditions)
+        diff = lhs - rhs if self.op in ("<=", "<") else rhs - lhs
+        n = max(np.atleast_2d(np.asarray(v)).shape[0] for v in values.values()) if values else diff.shape[0]
+        return np.broadcast_to(np.max(diff, axis=-1), (n,)).copy()
 
 
 def _parse(source: str, where: str) -> ast.expr:
@@ -228,6 +249,10 @@ class _Evaluator:
         vector = self.visit(node.value)
         if np.ndim(vector) != 1:
             raise self.fail("selects a condition from something that is not a quantity")
+        return float(vector[self.condition_index(node)])
+
+    def condition_index(self, node: ast.Subscript) -> int:
+        """The position in the campaign's conditions that a selector such as ``[mach=1.1]`` names."""
         wanted: dict[str, float] = {}
         items = node.slice.elts if isinstance(node.slice, ast.Tuple) else [node.slice]
         for item in items:
@@ -245,7 +270,7 @@ class _Evaluator:
         if len(hits) != 1:
             shown = ", ".join(f"{k}={v:g}" for k, v in wanted.items())
             raise self.fail(f"selects {shown}, which {'is not one of' if not hits else 'matches several of'} the campaign's conditions")
-        return float(vector[hits[0]])
+        return hits[0]
 
     def call(self, node: ast.Call) -> Any:
         if not isinstance(node.func, ast.Name) or node.func.id not in FUNCTIONS:
@@ -349,6 +374,149 @@ def _why(node: ast.AST) -> str:
     if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id == "sqrt":
         return "the square root of a negative number"
     return "a value out of range"
+
+
+class _BatchEvaluator(_Evaluator):
+    """Walks the same tree over many samples at once: every value is an array of shape (n_samples, k).
+
+    A quantity is (n_samples, n_conditions), a baseline quantity (1, n_conditions), anything reduced
+    over the conditions (n_samples, 1), so ``lift - mean(lift)`` broadcasts as it does for one design.
+    Reductions (``max(lift)``) act along the last axis, a selector (``lift[mach=1.1]``) takes one column.
+    Only expressions the scalar evaluator has accepted are evaluated here (the config check runs first),
+    so this class adds no error messages of its own.
+    """
+
+    def quantity(self, name: str, source: Values) -> Vector:
+        return np.atleast_2d(super().quantity(name, source))
+
+    def select(self, node: ast.Subscript) -> Vector:  # type: ignore[override]
+        column = self.condition_index(node)
+        return self.visit(node.value)[:, column : column + 1]
+
+    def call(self, node: ast.Call) -> Any:
+        name = node.func.id if isinstance(node.func, ast.Name) else ""
+        if name in REDUCERS and len(node.args) == 1 and not node.keywords:
+            return FUNCTIONS[name](self.visit(node.args[0]), axis=-1, keepdims=True)
+        return super().call(node)
+
+
+def _condition_label(condition: Mapping[str, float]) -> str:
+    return ",".join(f"{k}={v:g}" for k, v in condition.items())
+
+
+@dataclass(frozen=True)
+class Composition:
+    """The goal as a function of the solver's outputs, each quantity at each condition, vectorised over samples.
+
+    Composite infill models what the solver returns (each quantity at each condition, a smooth
+    function of the design) and computes the objective and the constraints by pushing samples of
+    those models through the goal itself (Astudillo & Frazier 2019). ``outputs`` lists the
+    (quantity, condition index) pairs the goal reads, in config order; quantities at conditions the
+    goal never reads are not modelled. ``Y`` arrays have one column per output.
+    """
+
+    goal: Goal
+    quantities: tuple[str, ...]
+    conditions: tuple[Mapping[str, float], ...]
+    baseline: Values | None
+    outputs: tuple[tuple[str, int], ...]
+
+    @property
+    def labels(self) -> list[str]:
+        """``quantity[condition]`` for each output, as the report and the ledger show it."""
+        return [self.label(q, c) for q, c in self.outputs]
+
+    def label(self, quantity: str, condition: int) -> str:
+        """``lift[mach=0.6]``: a quantity at the condition of that index."""
+        return f"{quantity}[{_condition_label(self.conditions[condition])}]"
+
+    def values(self, Y: np.ndarray) -> dict[str, np.ndarray]:
+        """Quantities of shape (n_samples, n_conditions) from output samples of shape (n_samples, n_outputs)."""
+        Y = np.atleast_2d(np.asarray(Y, dtype=float))
+        out = {q: np.zeros((Y.shape[0], len(self.conditions))) for q in self.quantities}
+        for k, (q, c) in enumerate(self.outputs):
+            out[q][:, c] = Y[:, k]
+        return out
+
+    def objective(self, Y: np.ndarray) -> np.ndarray:
+        """The objective to *minimise* (negated for a maximised goal), shape (n_samples,)."""
+        raw = self.goal.objective.evaluate_batch(self.values(Y), self.baseline, self.conditions)
+        sign = 1.0 if self.goal.sense == "minimize" else -1.0
+        return sign * np.broadcast_to(raw, (np.atleast_2d(Y).shape[0], 1))[:, 0]
+
+    def margins(self, Y: np.ndarray) -> np.ndarray:
+        """Each constraint's worst margin over conditions (positive = violated), shape (n_samples, n_constraints)."""
+        values = self.values(Y)
+        n = np.atleast_2d(Y).shape[0]
+        columns = [c.margin_batch(values, self.baseline, self.conditions) for c in self.goal.constraints]
+        return np.stack(columns, axis=1) if columns else np.zeros((n, 0))
+
+
+def read_outputs(goal: Goal, quantities: Sequence[str], conditions: Sequence[Mapping[str, float]]) -> tuple[tuple[str, int], ...]:
+    """The (quantity, condition index) pairs the objective or a constraint depends on, in config order.
+
+    Found by poisoning one output at a time with NaN, which every allowed operation propagates
+    (reductions, selectors, arithmetic), rather than by a second reading of the syntax tree.
+    """
+    n = len(conditions)
+    ones = {q: np.ones((1, n)) for q in quantities}
+    used = []
+    for q in quantities:
+        for c in range(n):
+            poisoned = {**ones, q: ones[q].copy()}
+            poisoned[q][0, c] = np.nan
+            hit = np.isnan(goal.objective.evaluate_batch(poisoned, {k: v[0] for k, v in ones.items()}, conditions)).any()
+            hit = hit or any(np.isnan(con.margin_batch(poisoned, {k: v[0] for k, v in ones.items()}, conditions)).any()
+                             for con in goal.constraints)
+            if hit:
+                used.append((q, c))
+    return tuple(used)
+
+
+def model_rule(goal: Goal, quantities: Sequence[str], conditions: Sequence[Mapping[str, float]]) -> tuple[str, str]:
+    """The default surrogate mode, ``"composite"`` or ``"direct"``, and why, in a few words.
+
+    Composite when the goal reads a quantity at more than one condition or uses ``abs``, ``max``
+    or ``min``: those put kinks into the objective (or a constraint) whose parts are smooth, and a
+    model of the parts composes them exactly. Otherwise each quantity enters once and smoothly, and
+    one model of the objective is as good and cheaper.
+    """
+    per_quantity: dict[str, int] = {}
+    for q, _ in read_outputs(goal, quantities, conditions):
+        per_quantity[q] = per_quantity.get(q, 0) + 1
+    several = [f"{q} at {k} conditions" for q, k in per_quantity.items() if k > 1]
+    trees = [goal.objective.tree] + [t for c in goal.constraints for t in (c.lhs.tree, c.rhs.tree)]
+    kinks = sorted({n.func.id for t in trees for n in ast.walk(t)
+                    if isinstance(n, ast.Call) and isinstance(n.func, ast.Name) and n.func.id in ("abs", "max", "min")})
+    if several or kinks:
+        why = "; ".join([*(["the goal reads " + ", ".join(several)] if several else []),
+                         *(["it uses " + "/".join(kinks)] if kinks else [])])
+        return "composite", why
+    return "direct", "the goal reads each quantity at one condition, without abs/max/min"
+
+
+def composition_problem(goal: Goal, quantities: Sequence[str], conditions: Sequence[Mapping[str, float]]) -> str | None:
+    """A sentence saying why the goal cannot be computed from per-quantity models, or None if it can.
+
+    The vectorised evaluation must reproduce the scalar one (what scores every design) on random
+    values, and the goal must read at least one quantity the solver returns.
+    """
+    if not read_outputs(goal, quantities, conditions):
+        return "plan.infill.model: composite needs a goal that reads at least one quantity; use model: direct"
+    rng = np.random.default_rng(0)
+    n = len(conditions)
+    samples = {q: rng.uniform(0.5, 2.0, (4, n)) for q in quantities}
+    base = {q: rng.uniform(0.5, 2.0, n) for q in quantities}
+    for i in range(4):
+        one = {q: v[i] for q, v in samples.items()}
+        scalar = goal.score(one, base, conditions)
+        batch_obj = np.broadcast_to(goal.objective.evaluate_batch(samples, base, conditions), (4, 1))[i, 0]
+        batch_margins = [c.margin_batch(samples, base, conditions)[i] for c in goal.constraints]
+        expected = [scalar.objective, *scalar.constraints.values()]
+        if not np.allclose([batch_obj, *batch_margins], expected, rtol=1e-9, atol=1e-12, equal_nan=True):
+            return ("plan.infill.model: the goal cannot be computed from models of each quantity at each condition "
+                    "(its sample-wise evaluation disagrees with the design-wise one); use model: direct")
+    return None
 
 
 @dataclass(frozen=True)

@@ -36,7 +36,7 @@ from sortie.errors import LedgerError
 from sortie.infill import MIN_POINTS
 from sortie.ledger import DesignRow, writable_dir
 from sortie.runstate import campaign_state, describe_state
-from sortie.status import best_design
+from sortie.status import best_design, choice_rule, output_checks
 
 CAUTION = ("Surrogate predictions must be confirmed by the real solver and by test; the design decision and any "
            "structural and safety sign-off follow the organisation's own rules and licensed practice.")
@@ -416,7 +416,8 @@ def _trust(ctx: _Context, s: Section) -> None:
             highlight[ctx.best.id] = (figures.BEST, "best design")
         axis = ctx.config.goal.objective().source if target == "objective" else "margin (> 0: violated)"
         panels.append(figures.ParityPanel(title, model.loo(), axis, highlight))
-        lines.append(f"{target}: {model.name} chosen by leave-one-out error among {tried} (RMSE, in the target's units).")
+        lines.append(f"{target}: {model.name}, the lowest leave-one-out error among {tried} (RMSE, in the target's units) "
+                     f"and so the model of this panel; the campaign's rule for it: {choice_rule(target)}.")
     if not panels:
         done = len(ctx.done)
         s.text(f"Surrogates need at least {MIN_POINTS} finished designs; {done} so far. This section fills in as the "
@@ -637,6 +638,26 @@ def _designs(ctx: _Context, s: Section) -> None:
                 row[f"{c['constraint']}: actual"] = c.get("actual")
             rows.append(row)
         s.table(pd.DataFrame(rows))
+    per_output = [{"design": c.get("design"), "quantity at condition": o["output"],
+                   "predicted (±2σ)": _pm(o.get("predicted"), o.get("predicted_std")), "actual": o.get("actual")}
+                  for c in confirmations for o in c.get("outputs") or []]
+    if per_output:
+        s.table(pd.DataFrame(per_output))
+    checked = output_checks(ctx.snap.designs, ctx.snap.cases, cfg, ctx.snap.models)
+    if checked:
+        s.html("<h3>Predicted against actual, each quantity at each condition</h3>")
+        s.table(pd.DataFrame([{"quantity at condition": r["output"], "designs": r["designs"],
+                               "mean predicted σ": f"{r['mean_predicted_std']:.3g}", "RMS error": f"{r['rms_error']:.3g}",
+                               "within ±2σ": f"{r['within_2_std']:.0%}",
+                               "estimated noise σ": "—" if r["noise_std"] is None else f"{r['noise_std']:.3g}",
+                               "spread of repeated designs": "no repeats" if r["repeat_spread"] is None
+                               else f"{r['repeat_spread']:.3g}"} for r in checked]))
+        s.note("Over the designs proposed in composite mode: what each quantity's model predicted before the solver "
+               "ran the design, against what the solver returned. About 95 % within ±2σ means the models know "
+               "their error; far fewer means they are over-confident. The estimated noise is the white-noise level "
+               "each quantity's process fitted (when it is above about 3 % of the quantity's spread, infill measures "
+               "improvement from the best predicted feasible design, not the best observed one); the spread of "
+               "repeated designs is what the solver really scattered by, where a design was run twice.")
     pending = [d for d in ctx.snap.designs if d.status == "pending"]
     if pending:
         s.html("<h3>Designs in progress</h3>")

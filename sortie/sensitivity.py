@@ -361,7 +361,7 @@ def surrogate_screening(
     -------
     SurrogateScreen
     """
-    from sortie.surrogate import choose_surrogate  # the models module is heavy; screening numbers are not
+    from sortie.models import choose_surrogate  # the models module is heavy; screening numbers are not
 
     X = np.asarray(X, dtype=float)
     Y = np.asarray(y, dtype=float)

@@ -127,11 +127,14 @@ def surrogate_indices(objective: Any, margins: Sequence[Any], goal: Goal, names:
             "n_points": n_points}
 
 
-def confirmation_check(design: DesignRow, goal: Goal) -> dict[str, Any]:
-    """Predicted against actual for a confirmation design: objective and every constraint margin.
+def confirmation_check(design: DesignRow, goal: Goal, actual_outputs: dict[str, float | None] | None = None) -> dict[str, Any]:
+    """Predicted against actual for a confirmation design: objective, every constraint margin, and (composite
+    mode) every quantity at every condition the goal reads.
 
     A confirmation passes when the real run succeeded and is feasible; the prediction's
     standard deviations are kept beside each number so a reviewer sees how sure the surrogate was.
+    ``actual_outputs`` maps ``quantity[condition]`` labels to what the solver returned (None where the
+    case failed); the per-output rows appear when the prediction has them.
     """
     pred = design.prediction or {}
     sources = [c.source for c in goal.constraints]
@@ -147,7 +150,9 @@ def confirmation_check(design: DesignRow, goal: Goal) -> dict[str, Any]:
         verdict = f"failed: the real run violates {', '.join(broken)}"
     else:
         verdict = "passed: the real run is feasible"
+    outputs = [{"output": label, "predicted": p.get("mean"), "predicted_std": p.get("std"),
+                "actual": (actual_outputs or {}).get(label)} for label, p in (pred.get("outputs") or {}).items()]
     return {"design": design.id, "passed": passed, "verdict": verdict,
             "objective": {"predicted": pred.get("objective_mean"), "predicted_std": pred.get("objective_std"),
                           "actual": design.objective},
-            "constraints": constraints}
+            "constraints": constraints, "outputs": outputs}

@@ -6,7 +6,10 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from typing import TYPE_CHECKING, Any
+
+import numpy as np
 
 from sortie.config import CampaignConfig
 from sortie.ledger import DESIGN_STATES, DesignRow, Ledger
@@ -64,11 +67,58 @@ def summary(ledger: Ledger, config: CampaignConfig) -> dict[str, Any]:
         },
         "baseline": _baseline(ledger.first_design("baseline")),
         "stages": ledger.tally("designs", "stage"),
-        "models": ledger.model_choices(),
+        "models": {target: {**choice, "rule": choice_rule(target)} for target, choice in ledger.model_choices().items()},
         "screening": _latest(ledger.analyses("screening")),
         "confirmations": [a["data"] for a in ledger.analyses("confirmation")],
         **_attempt_summary(ledger),
     }
+
+
+def ledger_output_checks(ledger: Ledger, config: CampaignConfig) -> list[dict[str, Any]]:
+    """:func:`output_checks` read from the ledger, for a one-off ``sortie status``: the case rows are
+    streamed, not held. Never part of :func:`summary`, which the live watcher recomputes per event."""
+    return output_checks(list(ledger.iter_designs()), ledger.iter_cases(states=("done",)), config, ledger.model_choices())
+
+
+def output_checks(designs: list[DesignRow], cases: Iterable[Any], config: CampaignConfig,
+                  models: dict[str, dict[str, Any]] | None = None) -> list[dict[str, Any]]:
+    """Predicted against actual for each quantity at each condition, over the designs proposed in composite mode.
+
+    One row per output: how many proposed designs returned it, the mean of the predicted std, the
+    root-mean-square error of the prediction and the share of designs within two predicted stds
+    (about 95 % when the models are calibrated; far fewer means they are over-confident); the
+    noise std its GP estimated (from ``models``, the ledger's latest model choices) beside the
+    pooled std of designs run more than once with the same values (None without repeats).
+    """
+    conditions = config.condition_list()
+    actual: dict[tuple[int, str], float] = {}
+    for c in cases:
+        if c.state == "done" and c.quantities:
+            label = ",".join(f"{k}={v:g}" for k, v in conditions[c.condition_index].items())
+            for q, value in c.quantities.items():
+                actual[(c.design_id, f"{q}[{label}]")] = value
+    seen: dict[str, list[tuple[float, float, float]]] = {}
+    for d in designs:
+        for label, pred in ((d.prediction or {}).get("outputs") or {}).items():
+            if (d.id, label) in actual and pred.get("mean") is not None and pred.get("std") is not None:
+                seen.setdefault(label, []).append((pred["mean"], pred["std"], actual[(d.id, label)]))
+    repeats: dict[str, list[int]] = {}
+    for d in designs:
+        repeats.setdefault(repr(sorted(d.values.items())), []).append(d.id)
+    rows = []
+    for label, triples in seen.items():
+        err = np.array([a - m for m, _, a in triples])
+        std = np.array([sd for _, sd, _ in triples])
+        groups = [[actual[(i, label)] for i in ids if (i, label) in actual] for ids in repeats.values()]
+        groups = [g for g in groups if len(g) > 1]
+        dof = sum(len(g) - 1 for g in groups)
+        spread = float(np.sqrt(sum(float(np.sum((np.array(g) - np.mean(g)) ** 2)) for g in groups) / dof)) if dof else None
+        gp = next((sc for sc in ((models or {}).get(label) or {}).get("scores", []) if sc.get("name") == "gp"), {})
+        rows.append({"output": label, "designs": len(triples), "mean_predicted_std": float(std.mean()),
+                     "rms_error": float(np.sqrt(np.mean(err**2))),
+                     "within_2_std": float(np.mean(np.abs(err) <= 2 * std)),
+                     "noise_std": gp.get("noise_std"), "repeat_spread": spread})
+    return rows
 
 
 def _latest(analyses: list[dict[str, Any]]) -> dict[str, Any] | None:
@@ -114,3 +164,19 @@ def design_table(ledger: Ledger, config: CampaignConfig) -> pd.DataFrame:
         rows.append(row)
     columns = ["id", "stage", *config.parameters, "objective", *config.goal.subject_to, "feasible", "status"]
     return pd.DataFrame(rows, columns=columns)
+
+
+def choice_rule(target: str) -> str:
+    """How sortie picks the model of ``target`` (as recorded in the ledger), in words for reports and status.
+
+    The objective's rule is not the leave-one-out ranking during infill (see :func:`sortie.infill.fit_models`), and
+    the reports must not say it is. A composite output's label (``lift[mach=0.6]``) has no comparison
+    operator, a constraint's source always has one.
+    """
+    if target == "objective":
+        return ("a GP during infill whatever the leave-one-out ranking (EI needs a std that vanishes at the designs "
+                "run); the lowest leave-one-out error among models with a std for the confirmation and classic surfaces")
+    if not any(op in target for op in ("<", ">")):
+        return ("a GP for each quantity at each condition during composite infill; the lowest leave-one-out error "
+                "among models with a std for the confirmation and classic surfaces")
+    return "the lowest leave-one-out error among models with a std"

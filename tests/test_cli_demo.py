@@ -78,7 +78,9 @@ def test_status_json_reports_the_counts(demo) -> None:
     assert status["designs_total"] == status["designs_done"] == n_designs
     assert status["designs_failed"] == status["cases_failed"] == status["cases_running"] == 0
     assert status["cases_done"] == n_designs * len(config["conditions"]["mach"])
-    assert set(status["models"]) == {"objective", "drag <= baseline.drag"}
+    # the demo's swing goal is composite: one model per quantity per condition
+    assert set(status["models"]) == {f"{q}[mach={m:g}]" for q in ("lift", "drag") for m in config["conditions"]["mach"]}
+    assert {r["output"] for r in status["outputs_checked"]} == set(status["models"])
     with Ledger.open(ledger_path(directory), readonly=True) as ledger:
         feasible = [d for d in ledger.designs() if d.feasible]
     best = min(feasible, key=lambda d: d.objective)

@@ -237,10 +237,10 @@ def test_gp_keeps_convergence_warnings_instead_of_printing_them(recwarn):
 
 
 def test_gp_retries_a_failed_cholesky_with_more_jitter(monkeypatch):
-    # The project's own rule (sortie.surrogate): a failed Cholesky is retried with alpha x 100 up to 1e-4,
+    # The project's own rule (sortie.models.gp): a failed Cholesky is retried with alpha x 100 up to 1e-4,
     # then reported. gp.md §1 suggests x 10 up to about 1e-4, after scikit-learn's LinAlgError advice;
     # no outside number is checked here.
-    import sortie.surrogate as surrogate
+    import sortie.models.gp as gp_module
 
     class FailsBelow(GaussianProcessRegressor):
         threshold = 1e-6
@@ -250,7 +250,7 @@ def test_gp_retries_a_failed_cholesky_with_more_jitter(monkeypatch):
                 raise np.linalg.LinAlgError("not positive definite")
             return super().fit(X, y)
 
-    monkeypatch.setattr(surrogate, "GaussianProcessRegressor", FailsBelow)
+    monkeypatch.setattr(gp_module, "GaussianProcessRegressor", FailsBelow)
     X = _lhs(10, 2)
     gp = GaussianProcessSurrogate(n_restarts=0, random_state=0).fit(X, _smooth(X))
     assert gp.alpha_ == pytest.approx(1e-6)

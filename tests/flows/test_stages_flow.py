@@ -117,3 +117,32 @@ def test_surrogate_screening_selects_the_parameters_the_mock_uses_and_its_design
     # Sobol' points move every parameter, so each one is a distinct design of the selected parameters too.
     assert len({tuple(d.values[n] for n in physics.ACTIVE_PARAMETERS if n != "fin_count") for d in screened}) == 64
     assert [d.stage for d in designs].count("initial") == 8 and len(designs) == config["budget"]["designs"]
+
+
+def test_composite_infill_and_confirmation_through_the_flow(tmp_path: Path) -> None:
+    # The demo's swing goal reads lift and drag at both Mach numbers and uses max/min: composite by default.
+    config = _config(initial={"method": "lhs", "designs": 6}, infill={"candidates": 256, "restarts": 2},
+                     confirmation={"designs": 1})
+    del config["plan"]["screening"]
+    for name in set(config["parameters"]) - set(physics.ACTIVE_PARAMETERS):
+        config["parameters"][name]["fixed"] = True
+    config["budget"] = {"designs": 1 + 6 + 4 + 1}
+    assert load_config(write_config(tmp_path, config), check_solver=check_solver).surrogate_mode()[0] == "composite"
+    directory = _run(tmp_path, config)
+    with Ledger.open(ledger_path(directory)) as ledger:
+        assert ledger.check_consistency() == []
+        designs = ledger.designs()
+        (check,) = [c["data"] for c in ledger.analyses("confirmation")]
+        targets = set(ledger.model_choices())
+    labels = {f"{q}[mach={m:g}]" for q in ("lift", "drag") for m in (0.6, 1.3)}
+    assert labels <= targets  # one model per quantity per condition, recorded like any other choice
+    infill = [d for d in designs if d.stage == "infill"]
+    assert len(infill) == 4 and all(set(d.prediction["outputs"]) == labels for d in infill)
+    confirmation = designs[-1]
+    assert confirmation.stage == "confirmation" and check["design"] == confirmation.id
+    assert {row["output"] for row in check["outputs"]} == labels
+    if confirmation.status == "done":
+        rows = {row["output"]: row for row in check["outputs"]}
+        swing = max(rows[f"lift[mach={m:g}]"]["actual"] for m in (0.6, 1.3)) - \
+            min(rows[f"lift[mach={m:g}]"]["actual"] for m in (0.6, 1.3))
+        assert swing == pytest.approx(confirmation.objective)  # the actual values are the ones the goal scored
