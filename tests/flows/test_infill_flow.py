@@ -102,6 +102,9 @@ def test_classic_path_confirms_the_surface_optimum_with_prediction_beside_it(tmp
     last = designs[-1]
     assert last.stage == "confirmation" and last.status == "done"
     assert set(last.prediction) >= {"objective_mean", "objective_std", "margins_mean"}
-    assert models["objective"]["chosen"] == "quadratic"
+    # mean(f) reads f at both conditions, so the surface is composite: the classic stage's quadratic is
+    # fitted to each quantity at each condition, and the objective is composed from them
+    assert {k: v["chosen"] for k, v in models.items()} == {
+        f"{q}[scale={s}]": "quadratic" for q in ("f", "g") for s in (1, 2)}
     # the confirmation is the optimum of the fitted quadratic: no initial design is predicted lower
     assert last.prediction["objective_mean"] <= min(d.objective for d in designs[:-1]) + 1e-6
