@@ -378,7 +378,7 @@ def test_unknown_targets_say_what_is_allowed(sim: Path) -> None:
 
 def test_loo_table_matches_refits_without_each_design(sim: Path) -> None:
     """The closed-form leave-one-out prediction equals a refit without the design, at fixed hyper-parameters."""
-    from sortie.surrogate import GaussianProcessSurrogate
+    from sortie.models import GaussianProcessSurrogate
 
     view = open_campaign(sim)
     model = view.surrogate("objective", models=["gp"])

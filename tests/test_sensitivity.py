@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from sortie import stages
+from sortie.models import GaussianProcessSurrogate
 from sortie.sampling import latin_hypercube, sobol
 from sortie.screening import morris_effects, morris_trajectories
 from sortie.sensitivity import (
@@ -20,7 +21,6 @@ from sortie.sensitivity import (
     surrogate_screening,
     surrogate_sobol_indices,
 )
-from sortie.surrogate import GaussianProcessSurrogate
 
 # Ishigami, a = 7, b = 0.1 (Ishigami & Homma 1990; analytic values, CHECKS.md §5 table).
 ISHIGAMI_S = [0.3139051911478115, 0.4424111447900409, 0.0]

@@ -12,15 +12,15 @@ from sklearn.base import clone
 from sklearn.exceptions import NotFittedError
 from sklearn.gaussian_process import GaussianProcessRegressor
 
-from sortie.surrogate import (
+from sortie.models import (
     GaussianProcessSurrogate,
     ModelScore,
     QuadraticSurface,
     RadialBasisSurrogate,
-    _neg_log_posterior,
     choose_surrogate,
     make_surrogate,
 )
+from sortie.models.gp import _neg_log_posterior
 
 SEED = 20240611
 
